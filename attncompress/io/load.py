@@ -1,0 +1,72 @@
+"""Open any supported path as a runnable model: source checkpoints and compressed directories."""
+from __future__ import annotations
+
+import json
+from dataclasses import dataclass
+from pathlib import Path
+
+import torch
+
+from .. import arch
+from ..errors import CompressError
+from ..model import Transformer, build
+from ..shape import ModelShape
+from .read import MANIFEST, TensorSource, open_source
+
+
+@dataclass
+class Loaded:
+    """A model ready to run, with where it came from."""
+    model: Transformer
+    shape: ModelShape
+    tokenizer: object | None  # tokenizers.Tokenizer
+    source: TensorSource
+    walk: arch.Walk | None  # None for a compressed directory
+    manifest: dict | None  # the compressed directory's manifest, or None for a source checkpoint
+
+    @property
+    def path(self) -> Path:
+        return self.source.path
+
+
+def is_compressed(path: str | Path) -> bool:
+    return Path(path).is_dir() and (Path(path) / MANIFEST).is_file()
+
+
+def read_manifest(path: str | Path) -> dict:
+    f = Path(path) / MANIFEST
+    try:
+        m = json.loads(f.read_text(encoding="utf-8"))
+    except (OSError, UnicodeDecodeError, json.JSONDecodeError) as e:
+        raise CompressError(f"{f}: not a readable manifest ({e.__class__.__name__})") from None
+    if not isinstance(m, dict) or "shape" not in m or "format_version" not in m:
+        raise CompressError(f"{f}: manifest lacks 'shape' or 'format_version'; expected a directory written by attncompress")
+    return m
+
+
+def load_weights(path: str | Path, heads: int | None = None, kv_heads: int | None = None):
+    """(shape, canonical weights, source, walk, manifest) without building the runtime."""
+    source = open_source(path)
+    if is_compressed(path):
+        manifest = read_manifest(path)
+        shape = ModelShape.from_json(manifest["shape"])
+        weights = {}
+        for n in source.names():
+            t = source.get(n)
+            weights[n] = t if not t.is_floating_point() else t.to(torch.float32)
+        return shape, weights, source, None, manifest
+    w = arch.walk(source, heads, kv_heads)
+    weights = dict(arch.canonical_weights(source, w))
+    return w.shape, weights, source, w, None
+
+
+def load_model(path: str | Path, heads: int | None = None, kv_heads: int | None = None) -> Loaded:
+    """Open `path` (model directory, compressed directory, .safetensors or .gguf) and build our runtime.
+
+    Raises:
+        CompressError: missing or corrupt files, unknown family, shapes that disagree with the config.
+    """
+    shape, weights, source, w, manifest = load_weights(path, heads, kv_heads)
+    model = build(shape, weights)
+    model.eval()
+    return Loaded(model, shape, source.tokenizer(), source, w, manifest)
