@@ -1,0 +1,162 @@
+"""Spectra of the per-head products and feed-forward matrices, and the calibration statistics they may use.
+
+Shape legend: d d_model, f d_ff, hd head_dim, g key/value groups, h query heads, n calibration tokens.
+
+Pure functions on tensors, except `collect_stats`, which runs our runtime with
+hooks to accumulate the input Gram matrices the whitened spectra need:
+
+    attention input x (d, d), with its column sums (for the [x; 1] query side)
+    feed-forward input (d, d), and the input of the down/out matrix (f, f)
+
+Gram matrices are summed in float64 from float32 per-batch products (the
+products are exact enough per batch; the sum over tens of thousands of tokens
+is where float32 would lose digits).
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import torch
+
+from . import factorize as fz
+from .model import Transformer
+from .progress import Progress
+from .shape import ModelShape
+
+
+@dataclass
+class LayerStats:
+    """Calibration statistics of one layer (float64)."""
+    attn_gram: torch.Tensor  # (d, d) Σ xᵀx of the attention input
+    attn_sum: torch.Tensor  # (d,) Σ x, for the Gram of [x; 1]
+    ff_gram: torch.Tensor  # (d, d) feed-forward input
+    down_gram: torch.Tensor  # (f, f) input of the down (out) matrix
+    tokens: int
+
+
+@torch.no_grad()
+def collect_stats(model: Transformer, blocks: torch.Tensor, batch: int = 8, quiet: bool = True) -> list[LayerStats]:
+    """Run calibration token blocks (n_blocks, s) through the model and accumulate per-layer Gram matrices.
+
+    The output head is never run: only the blocks' inputs are needed.
+    """
+    sh = model.shape
+    stats = [LayerStats(torch.zeros(sh.d_model, sh.d_model, dtype=torch.float64),
+                        torch.zeros(sh.d_model, dtype=torch.float64),
+                        torch.zeros(sh.d_model, sh.d_model, dtype=torch.float64),
+                        torch.zeros(sh.d_ff, sh.d_ff, dtype=torch.float64), 0) for _ in range(sh.n_layers)]
+
+    def add(i, field):
+        def hook(_module, args):
+            x = args[0].reshape(-1, args[0].shape[-1])  # (n, d)
+            g = getattr(stats[i], field)
+            g += (x.T @ x).double()  # float32 product per batch, float64 sum
+            if field == "attn_gram":
+                stats[i].attn_sum += x.sum(0).double()
+                stats[i].tokens += x.shape[0]
+        return hook
+
+    handles = []
+    for i, blk in enumerate(model.blocks):
+        handles.append(blk.attn.register_forward_pre_hook(add(i, "attn_gram")))
+        handles.append(blk.ff.register_forward_pre_hook(add(i, "ff_gram")))
+        handles.append(blk.ff.down.register_forward_pre_hook(add(i, "down_gram")))
+    try:
+        with Progress(blocks.shape[0] * blocks.shape[1], "calibration", unit="tok", quiet=quiet) as bar:
+            for j in range(0, blocks.shape[0], batch):
+                model.hidden(blocks[j:j + batch])
+                bar.update(blocks[j:j + batch].numel())
+    finally:
+        for h in handles:
+            h.remove()
+    return stats
+
+
+@dataclass
+class Roots:
+    """Whitening factors of one layer's inputs (G_damped = L Lᵀ), or None for weight-only spectra."""
+    attn: tuple[torch.Tensor, torch.Tensor] | None  # (L, L⁻¹) for x, (d, d)
+    attn_aug: tuple[torch.Tensor, torch.Tensor] | None  # for [x; 1], (d+1, d+1); non-rotary query side
+    ff: tuple[torch.Tensor, torch.Tensor] | None
+    down: tuple[torch.Tensor, torch.Tensor] | None
+
+
+def layer_roots(stats: LayerStats | None, damping: float, with_bias_row: bool = False) -> Roots:
+    """Damped Cholesky roots of one layer's Gram matrices (see `factorize.gram_root` for the damping)."""
+    if stats is None:
+        return Roots(None, None, None, None)
+    aug = None
+    if with_bias_row:
+        aug = fz.gram_root(fz.augmented_gram(stats.attn_gram, stats.attn_sum, stats.tokens), damping)
+    return Roots(fz.gram_root(stats.attn_gram, damping), aug, fz.gram_root(stats.ff_gram, damping),
+                 fz.gram_root(stats.down_gram, damping))
+
+
+def head_slices(w: torch.Tensor, n: int) -> list[torch.Tensor]:
+    """Split a (n*hd, d) projection into n head blocks (hd, d). Example: (8, 3), n=2 → two (4, 3)."""
+    return list(w.reshape(n, -1, w.shape[-1]).unbind(0))
+
+
+def pair_scores(shape: ModelShape, wq: torch.Tensor, wk: torch.Tensor, root=None) -> torch.Tensor:
+    """Score of each rotary pair in each key/value group: (g, hd/2).
+
+    score[g, i] = Σ_{h in g} ‖Wq_{h,i} L‖_F · ‖Wk_{g,i} L‖_F, where Wq_{h,i} are the two rows of pair i
+    (dims i and i + hd/2). With L from the calibration Gram, ‖W_i L‖² is the summed squared magnitude of that
+    pair over the calibration tokens, so the score is the product of the query-pair and key-pair RMS
+    magnitudes (rotation leaves a pair's magnitude unchanged); with L = I it is a weight-norm score.
+    """
+    hd, p = shape.head_dim, shape.head_dim // 2
+    wq, wk = wq.double(), wk.double()
+    if root is not None:
+        wq, wk = wq @ root[0], wk @ root[0]  # (rows, d) @ (d, d)
+    q2 = wq.pow(2).sum(-1).reshape(shape.n_heads, 2, p).sum(1)  # (h, p) squared norm of each pair's two rows
+    k2 = wk.pow(2).sum(-1).reshape(shape.n_kv_heads, 2, p).sum(1)  # (g, p)
+    q2 = q2.reshape(shape.n_kv_heads, shape.q_per_kv, p)  # query head j belongs to group j // q_per_kv
+    return (q2.sqrt() * k2.sqrt()[:, None, :]).sum(1)  # (g, p)
+
+
+def layer_spectra(shape: ModelShape, w: dict[str, torch.Tensor], layer: int, roots: Roots) -> dict[str, dict]:
+    """Per kind, the values that rank the units of one layer.
+
+    Returns kind → {"values": (groups, units) descending singular values or pair scores, "gains": (units,)
+    energy won by each successive unit summed across heads/groups, and for rotary qk "scores": (g, hd/2)
+    in pair order}.
+    """
+    p = f"layers.{layer}."
+    out: dict[str, dict] = {}
+    wq, wk, wv, wo = (w[p + f"attn.{m}.weight"] for m in "qkvo")
+    if shape.rotary:
+        sc = pair_scores(shape, wq, wk, roots.attn)  # (g, p)
+        vals = sc.sort(dim=1, descending=True).values
+        # a pair's score is the magnitude of its score term, so its square plays the part of σ²
+        out["qk"] = {"values": vals, "gains": vals.pow(2).sum(0), "scores": sc}
+    else:
+        bq = w.get(p + "attn.q.bias")
+        svs = []
+        for h, (q_h, k_h) in enumerate(zip(head_slices(wq, shape.n_heads), head_slices(wk, shape.n_kv_heads))):
+            m = fz.qk_bias_form(q_h, None if bq is None else bq.reshape(shape.n_heads, -1)[h], k_h)
+            left = roots.attn_aug if bq is not None else roots.attn
+            if left is not None:
+                m = left[0].T @ m @ roots.attn[0]  # Lᵀ M L: the bilinear form in whitened coordinates
+            svs.append(torch.linalg.svdvals(m)[: shape.head_dim])
+        vals = torch.stack(svs)  # (h, hd)
+        out["qk"] = {"values": vals, "gains": vals.pow(2).sum(0)}
+    l_attn = roots.attn[0] if roots.attn is not None else None
+    svs = []
+    for g, v_g in enumerate(head_slices(wv, shape.n_kv_heads)):
+        heads = [wo[:, (g * shape.q_per_kv + j) * shape.head_dim:(g * shape.q_per_kv + j + 1) * shape.head_dim]
+                 for j in range(shape.q_per_kv)]
+        svs.append(fz.vo_group_singular_values(v_g, heads, l_attn))
+    vals = torch.stack(svs)  # (g, hd)
+    out["vo"] = {"values": vals, "gains": vals.pow(2).sum(0)}
+    for kind in (("gate", "up", "down") if shape.gated else ("up", "down")):
+        root = roots.down if kind == "down" else roots.ff
+        s = fz.singular_values(w[p + f"ff.{kind}.weight"], None if root is None else root[0])
+        out[kind] = {"values": s[None], "gains": s.pow(2)}
+    return out
+
+
+def energy_kept(gains: torch.Tensor) -> list[float]:
+    """Fraction of energy kept at 0..n units. Example: gains [3, 1] → [0.0, 0.75, 1.0]."""
+    c = torch.cat([torch.zeros(1, dtype=torch.float64), gains.double().cumsum(0)])
+    return (c / c[-1].clamp_min(1e-300)).tolist()

@@ -1,0 +1,145 @@
+"""The command line: one click group, each command a thin call into `attncompress.api`."""
+from __future__ import annotations
+
+import json
+import sys
+
+import click
+
+from . import api
+from .errors import CompressError
+
+
+def _run(fn, *args, **kwargs):
+    """Call an API function; a user error becomes one line on stderr and exit status 1."""
+    try:
+        return fn(*args, **kwargs)
+    except CompressError as e:
+        raise click.ClickException(str(e)) from None
+    except KeyboardInterrupt:
+        click.echo("interrupted; nothing was left half-written", err=True)
+        sys.exit(130)
+
+
+def _emit(report: dict, as_json: bool, text: str) -> None:
+    click.echo(json.dumps(report, indent=2, default=str) if as_json else text)
+
+
+@click.group(context_settings={"help_option_names": ["-h", "--help"]})
+@click.version_option(package_name="attncompress")
+def main():
+    """Make a pretrained transformer smaller on a CPU, and measure what it cost.
+
+    PATH is a model directory (config.json + safetensors), a .safetensors or .gguf file, a directory written
+    by this tool, or builtin:NAME for a built-in model (builtin:smollm2-135m, builtin:minilm-l6).
+    """
+
+
+@main.command()
+@click.argument("path")
+@click.option("--json", "as_json", is_flag=True, help="Print the report as JSON.")
+@click.option("--heads", type=int, help="Query heads, for a bare .safetensors file with no config.json.")
+@click.option("--kv-heads", type=int, help="Key/value heads, for a bare .safetensors file (default: --heads).")
+def inspect(path, as_json, heads, kv_heads):
+    """Family, shape, parameter counts and the weight pairs found in each layer."""
+    r = _run(api.inspect, path, heads, kv_heads)
+    from .report import inspect_text
+    _emit(r, as_json, inspect_text(r))
+
+
+@main.command()
+@click.argument("path")
+@click.option("--text", "texts", multiple=True, required=True, type=click.Path(), help="UTF-8 text file (repeatable).")
+@click.option("--context", default=512, show_default=True, help="Tokens per window.")
+@click.option("--stride", type=int, help="Window step; below --context only the new tokens are scored. [default: --context]")
+@click.option("--max-tokens", type=int, help="Score only the first N tokens of the stream.")
+@click.option("--json", "as_json", is_flag=True, help="Print the report as JSON.")
+def perplexity(path, texts, context, stride, max_tokens, as_json):
+    """Token-level perplexity of a decoder over the concatenated text files."""
+    r = _run(api.perplexity, path, list(texts), context, stride, max_tokens)
+    _emit(r, as_json, f"perplexity {r['perplexity']:.4f} over {r['tokens']} tokens "
+                      f"(context {r['context']}, stride {r['stride']})")
+
+
+@main.command()
+@click.argument("path")
+@click.option("--text", required=True, type=click.Path(), help="UTF-8 file, one sentence per line.")
+@click.option("--json", "as_json", is_flag=True, help="Print the embeddings as JSON.")
+@click.option("--out", type=click.Path(), help="Write the embeddings as JSON to this file.")
+def embed(path, text, as_json, out):
+    """Mean-pooled sentence embeddings of an encoder."""
+    r = _run(api.embed, path, text)
+    if out:
+        from .io.write import write_json_atomic
+        _run(write_json_atomic, out, r)
+        click.echo(f"wrote {len(r['lines'])} embeddings of width {r['dim']} to {out}")
+    else:
+        _emit(r, as_json, f"{len(r['lines'])} embeddings of width {r['dim']} (use --json or --out to see them)")
+
+
+_text_opt = click.option("--text", "texts", multiple=True, type=click.Path(),
+                         help="Calibration text file (repeatable); makes the spectra activation-aware (whitened).")
+_damp_opt = click.option("--damping", default=0.01, show_default=True,
+                         help="Whitening damping, relative to the mean diagonal of each input Gram matrix.")
+
+
+@main.command()
+@click.argument("path")
+@_text_opt
+@_damp_opt
+@click.option("--out", required=True, type=click.Path(), help="Directory for spectra.json, summary.md and plots.")
+@click.option("--force", is_flag=True, help="Replace --out if it exists.")
+def spectrum(path, texts, damping, out, force):
+    """Singular values of every QK/VO product and feed-forward matrix, and energy kept per rank."""
+    from .report import write_spectrum
+    r = _run(api.spectrum, path, list(texts) or None, damping)
+    note = _run(write_spectrum, r, out, force)
+    click.echo(f"wrote {out}/spectra.json and {out}/summary.md; {note}")
+
+
+_keep_opt = click.option("--keep", type=float, help="Fraction of transformer-block matrix parameters to keep, in (0, 1].")
+_strategy_opt = click.option("--strategy", type=click.Choice(["uniform", "energy", "global"]), default="global",
+                             show_default=True, help="How ranks are shared out under the budget.")
+
+
+@main.command()
+@click.argument("path")
+@_keep_opt
+@_strategy_opt
+@_text_opt
+@_damp_opt
+@click.option("--out", type=click.Path(), help="Write the plan JSON here (edit it and pass it to compress --plan).")
+@click.option("--json", "as_json", is_flag=True, help="Print the summary as JSON.")
+def plan(path, keep, strategy, texts, damping, out, as_json):
+    """Choose ranks per layer under a --keep budget, without writing a model."""
+    r = _run(api.plan, path, out, keep, strategy, list(texts) or None, damping)
+    from .report import plan_text
+    _emit(r["summary"], as_json, plan_text(r["summary"]) + (f"\nwrote {out}" if out else ""))
+
+
+@main.command()
+@click.argument("path")
+@_keep_opt
+@click.option("--plan", "plan_file", type=click.Path(), help="A plan JSON (from `attncompress plan --out`), instead of --keep.")
+@_strategy_opt
+@_text_opt
+@click.option("--weights-only", is_flag=True, help="Plain SVD of the weights, no calibration text (risky: see the warning).")
+@_damp_opt
+@click.option("--out", required=True, type=click.Path(), help="Directory to write.")
+@click.option("--force", is_flag=True, help="Replace --out if it exists.")
+@click.option("--calib-blocks", default=256, show_default=True, help="Calibration passages to use at most.")
+@click.option("--calib-context", default=128, show_default=True, help="Tokens per calibration passage.")
+@click.option("--json", "as_json", is_flag=True, help="Print the report as JSON.")
+def compress(path, keep, plan_file, strategy, texts, weights_only, damping, out, force, calib_blocks, calib_context,
+             as_json):
+    """Cut ranks under a budget and write a smaller checkpoint."""
+    if weights_only:
+        click.echo("warning: --weights-only truncates by weights alone; on real small language models this can "
+                   "raise perplexity by orders of magnitude. Calibration text (--text) is strongly advised.", err=True)
+    if keep is not None and plan_file:
+        raise click.UsageError("give --keep or --plan, not both")
+    r = _run(api.compress, path, out, keep=keep, plan_file=plan_file, strategy=strategy, texts=list(texts) or None,
+             weights_only=weights_only, damping=damping, force=force, n_blocks=calib_blocks, context=calib_context)
+    from .report import plan_text
+    _emit(r, as_json, plan_text(r["plan"]) + f"\nwrote {r['out']} ({r['method']['factors']}) in "
+          + ", ".join(f"{k} {v:.1f}s" for k, v in r["seconds"].items()))

@@ -1,0 +1,124 @@
+"""Measuring a model: perplexity of a decoder, mean-pooled embeddings of an encoder, parameter counts."""
+from __future__ import annotations
+
+import math
+
+import torch
+import torch.nn.functional as F
+
+from .errors import CompressError
+from .model import Transformer
+from .progress import Progress
+
+
+def windows(n_tokens: int, context: int, stride: int) -> list[tuple[int, int, int]]:
+    """Sliding windows over a token stream: (begin, end, n_new) with the last n_new targets scored.
+
+    Every token after the first is scored exactly once. Example: n=10, context=4, stride=4 →
+    [(0, 4, 3), (4, 8, 4), (8, 10, 2)]; stride 2 → [(0, 4, 3), (2, 6, 2), (4, 8, 2), (6, 10, 2)].
+    """
+    if context < 2:
+        raise CompressError(f"--context must be at least 2, got {context}")
+    if not 1 <= stride <= context:
+        raise CompressError(f"--stride must be between 1 and --context ({context}), got {stride}")
+    out, prev_end, begin = [], 0, 0
+    while True:
+        end = min(begin + context, n_tokens)
+        new = end - max(prev_end, begin + 1)
+        if new > 0:
+            out.append((begin, end, new))
+        prev_end = end
+        if end >= n_tokens:
+            return out
+        begin += stride
+
+
+@torch.no_grad()
+def perplexity(model: Transformer, ids: list[int] | torch.Tensor, context: int = 512, stride: int | None = None,
+               batch: int = 4, quiet: bool = True, label: str = "perplexity") -> dict:
+    """Token-level perplexity of a decoder over one token stream.
+
+    Returns {"perplexity", "nll" (mean nats per token), "tokens" (scored), "context", "stride"}.
+    """
+    if not model.is_decoder:
+        raise CompressError("perplexity needs a decoder; this model is an encoder (use `embed` or `compare`)")
+    ids = torch.as_tensor(ids, dtype=torch.long)
+    stride = stride or context
+    wins = windows(len(ids), context, stride)
+    if not wins:
+        raise CompressError(f"text of {len(ids)} tokens is too short to score; give more text")
+    total, count = 0.0, 0
+    with Progress(sum(w[2] for w in wins), label, unit="tok", quiet=quiet) as bar:
+        i = 0
+        while i < len(wins):
+            # batch windows of equal length together (all but perhaps the last)
+            group = [wins[i]]
+            while (len(group) < batch and i + len(group) < len(wins)
+                   and wins[i + len(group)][1] - wins[i + len(group)][0] == group[0][1] - group[0][0]):
+                group.append(wins[i + len(group)])
+            x = torch.stack([ids[b:e] for b, e, _ in group])  # (n, s)
+            logits = model(x)  # (n, s, vocab)
+            for j, (b, e, new) in enumerate(group):
+                lp = F.log_softmax(logits[j, -new - 1:-1].float(), dim=-1)  # predictions of the last `new` tokens
+                tgt = x[j, -new:]
+                total += float(-lp.gather(1, tgt[:, None]).sum())
+                count += new
+            bar.update(sum(g[2] for g in group), ppl=math.exp(total / count))
+            i += len(group)
+    return {"perplexity": math.exp(total / count), "nll": total / count, "tokens": count, "context": context,
+            "stride": stride}
+
+
+@torch.no_grad()
+def embed(model: Transformer, tokenizer, lines: list[str], batch: int = 32, max_len: int | None = None) -> torch.Tensor:
+    """Mean-pooled last hidden states of an encoder, one row per line: (n_lines, d)."""
+    if model.is_decoder:
+        raise CompressError("embed needs an encoder; this model is a decoder (use `perplexity`)")
+    max_len = max_len or model.shape.max_positions
+    out = []
+    for i in range(0, len(lines), batch):
+        ids, mask = encode_batch(tokenizer, lines[i:i + batch], max_len)
+        h = model(ids, attention_mask=mask)  # (b, s, d)
+        m = mask[..., None].float()
+        out.append((h * m).sum(1) / m.sum(1).clamp_min(1.0))  # mean over real tokens only
+    return torch.cat(out)
+
+
+def encode_batch(tokenizer, lines: list[str], max_len: int) -> tuple[torch.Tensor, torch.Tensor]:
+    """Token ids (b, s) padded with 0 and the attention mask (b, s) for a list of sentences."""
+    encs = [tokenizer.encode(line) for line in lines]
+    seqs = [e.ids[:max_len] for e in encs]
+    s = max(len(q) for q in seqs)
+    ids = torch.zeros(len(seqs), s, dtype=torch.long)
+    mask = torch.zeros(len(seqs), s, dtype=torch.long)
+    for j, q in enumerate(seqs):
+        ids[j, :len(q)] = torch.tensor(q)
+        mask[j, :len(q)] = 1
+    return ids, mask
+
+
+def param_groups(weights: dict[str, torch.Tensor]) -> dict[str, int]:
+    """Parameter counts by group from canonical names: embeddings, attention, feed-forward, norms, other."""
+    groups = {"embeddings": 0, "attention": 0, "feed-forward": 0, "norms": 0, "other": 0}
+    for name, t in weights.items():
+        if not t.is_floating_point():
+            continue  # index tensors (kept rotary pairs) are not parameters
+        if name.startswith(("embed.tokens", "embed.positions", "embed.types", "lm_head")):
+            g = "embeddings"
+        elif "norm" in name:
+            g = "norms"
+        elif ".attn." in name:
+            g = "attention"
+        elif ".ff." in name:
+            g = "feed-forward"
+        else:
+            g = "other"
+        groups[g] += t.numel()
+    groups["total"] = sum(groups.values())
+    return groups
+
+
+def block_matrix_params(weights: dict[str, torch.Tensor]) -> int:
+    """Parameters of the transformer-block matrices (q, k, v, o and feed-forward weights or factors; no biases)."""
+    return sum(t.numel() for n, t in weights.items()
+               if n.startswith("layers.") and (".attn." in n or ".ff." in n) and n.endswith((".weight", ".a", ".b")))

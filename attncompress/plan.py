@@ -1,0 +1,871 @@
+"""Rank plans: how many units of rank every transformer-block matrix keeps, and the strategies that choose them.
+
+Per layer the plan covers these matrices ("kinds"), each with its unit of rank:
+
+* ``qk`` (query-key). Rotary families: one unit is one rotary frequency pair kept in every key/value group
+  (at most ``head_dim // 2``); ``p`` pairs leave ``2p`` of the ``head_dim`` rows of each query and key head.
+  Other families: one unit is one rank of each head's query-key bilinear form (at most ``head_dim``).
+* ``vo`` (value-output): rank per key/value group, shared by the layer (at most ``head_dim``).
+* feed-forward ``gate``, ``up``, ``down`` (gated) or ``up``, ``down`` (plain): an ``(m, n)`` matrix at rank
+  ``r`` stores ``r * (m + n)`` numbers; that pays only below the break-even rank ``m n / (m + n)``, so at or
+  above it the matrix stays dense (rank ``None``, ``m n`` numbers).
+
+The budget counts only weight matrices of the transformer blocks ("block-matrix parameters": q, k, v, o and the
+feed-forward weights). Biases, embeddings and norms are counted by :func:`count_params` but never budgeted.
+The query bias of a non-rotary ``qk`` unit (one number per head) is therefore reported under biases.
+"""
+from __future__ import annotations
+
+import dataclasses
+import heapq
+import inspect
+import json
+import math
+from dataclasses import dataclass
+from types import MappingProxyType
+from typing import Callable, Mapping, Sequence
+
+import numpy as np
+
+from .errors import CompressError
+from .shape import ModelShape
+
+PLAN_FORMAT = "attncompress.rank-plan"
+PLAN_VERSION = 1
+KINDS = ("qk", "vo", "gate", "up", "down")
+FF_KINDS = ("gate", "up", "down")
+UNITS = ("pair", "rank")
+# The shape fields a plan is tied to: any change makes the stored ranks meaningless.
+FINGERPRINT_FIELDS = ("family", "n_layers", "d_model", "n_heads", "n_kv_heads", "head_dim", "d_ff")
+DEFAULT_BYTES_PER_ELEMENT = 4  # float32 key/value cache
+
+
+# ----------------------------------------------------------------------------------------------- matrix costs
+
+def ff_kinds(shape: ModelShape) -> tuple[str, ...]:
+    """The feed-forward kinds of this model: ("gate", "up", "down") when gated, else ("up", "down")."""
+    return FF_KINDS if shape.gated else FF_KINDS[1:]
+
+
+def ff_dims(shape: ModelShape, kind: str) -> tuple[int, int]:
+    """Shape ``(m, n) = (d_out, d_in)`` of one feed-forward weight.
+
+    Args:
+        shape: the model.
+        kind: "gate", "up" or "down".
+    Returns:
+        ``(d_ff, d_model)`` for gate/up, ``(d_model, d_ff)`` for down.
+    Raises:
+        CompressError: kind is not a feed-forward kind of this model.
+    """
+    if kind not in ff_kinds(shape):
+        raise CompressError(f"model shape: {kind!r} is not a feed-forward matrix of this model; "
+                            f"expected one of {', '.join(ff_kinds(shape))}")
+    return (shape.d_model, shape.d_ff) if kind == "down" else (shape.d_ff, shape.d_model)
+
+
+def break_even_rank(m: int, n: int) -> float:
+    """The rank ``m n / (m + n)`` at which two factors ``(m, r)``, ``(r, n)`` store as many numbers as ``(m, n)``."""
+    return m * n / (m + n)
+
+
+def ff_max_rank(m: int, n: int) -> int:
+    """The largest rank ``r`` with ``r (m + n) < m n``: the highest rank worth storing factored."""
+    return (m * n - 1) // (m + n)
+
+
+@dataclass(frozen=True)
+class MatrixCost:
+    """What one matrix of one layer costs: the unit of rank, its count and price, and the dense price."""
+    layer: int
+    kind: str  # one of KINDS
+    unit: str  # "pair" (rotary qk) or "rank"
+    max_units: int
+    unit_params: int  # block-matrix parameters per kept unit
+    dense_params: int  # block-matrix parameters when stored dense / at full rank
+
+    def with_gains(self, gains: Sequence[float]) -> "MatrixSpectrum":
+        """This matrix with its per-unit energy gains attached (``gains: (max_units,)``)."""
+        return MatrixSpectrum(self.layer, self.kind, self.unit, self.max_units, self.unit_params,
+                              self.dense_params, tuple(gains))
+
+
+def matrix_layout(shape: ModelShape) -> list[MatrixCost]:
+    """Every plannable matrix of the model with its unit and prices, in layer order then ``KINDS`` order.
+
+    Args:
+        shape: the model.
+    Returns:
+        ``n_layers * (2 + len(ff_kinds(shape)))`` entries.
+    Raises:
+        CompressError: a non-rotary model with grouped-query attention (its per-head query-key rank would
+            need one key column per query head, which the key/value sharing forbids).
+    """
+    d, nh, nkv, hd = shape.d_model, shape.n_heads, shape.n_kv_heads, shape.head_dim
+    if shape.rotary:
+        # One pair keeps 2 rows of every query head and every key head.
+        qk = ("pair", shape.n_pairs, 2 * d * (nh + nkv))
+    else:
+        if nkv != nh:
+            raise CompressError(f"model shape: a non-rotary {shape.family} model needs n_kv_heads == n_heads "
+                                f"for per-head query-key ranks, got {nkv} and {nh}")
+        # One rank keeps one query weight column and one key weight column per head (the query bias is a bias).
+        qk = ("rank", hd, 2 * d * nh)
+    qk_dense = d * hd * (nh + nkv)
+    vo = ("rank", hd, d * (nkv + nh))  # one value row per group plus one output column per query head
+    out = []
+    for layer in range(shape.n_layers):
+        out.append(MatrixCost(layer, "qk", *qk, qk_dense))
+        out.append(MatrixCost(layer, "vo", *vo, d * hd * (nkv + nh)))
+        for kind in ff_kinds(shape):
+            m, n = ff_dims(shape, kind)
+            out.append(MatrixCost(layer, kind, "rank", min(m, n), m + n, m * n))
+    return out
+
+
+@dataclass(frozen=True)
+class MatrixSpectrum:
+    """One matrix's price list and the energy each successive unit of rank wins.
+
+    ``gains[k]`` is the energy (sum of squared singular values, or pair scores) won by unit ``k + 1``,
+    summed across heads / groups; non-increasing and non-negative. Energy kept at ``k`` units is
+    ``sum(gains[:k]) / sum(gains)``.
+    """
+    layer: int
+    kind: str
+    unit: str
+    max_units: int
+    unit_params: int
+    dense_params: int
+    gains: tuple[float, ...]  # (max_units,)
+
+    def __post_init__(self):
+        where = f"spectrum of layer {self.layer} {self.kind!r}"
+        if self.kind not in KINDS:
+            raise CompressError(f"{where}: unknown kind; expected one of {', '.join(KINDS)}")
+        if self.unit not in UNITS:
+            raise CompressError(f"{where}: unknown unit {self.unit!r}; expected 'pair' or 'rank'")
+        for name in ("max_units", "unit_params", "dense_params"):
+            if not _is_int(getattr(self, name)) or getattr(self, name) <= 0:
+                raise CompressError(f"{where}: {name} must be a positive whole number, got {getattr(self, name)!r}")
+        if not _is_int(self.layer) or self.layer < 0:
+            raise CompressError(f"{where}: layer must be a whole number >= 0")
+        if self.max_units * self.unit_params < self.dense_params:
+            raise CompressError(f"{where}: full rank ({self.max_units} x {self.unit_params}) is cheaper than dense "
+                                f"({self.dense_params}); the price list is wrong")
+        gains = tuple(float(g) for g in self.gains)
+        object.__setattr__(self, "gains", gains)
+        if len(gains) != self.max_units:
+            raise CompressError(f"{where}: {len(gains)} gains for {self.max_units} units; give one gain per unit")
+        g = np.asarray(gains, dtype=np.float64)
+        if not np.all(np.isfinite(g)) or np.any(g < 0):
+            raise CompressError(f"{where}: gains must be finite and >= 0")
+        # Tolerate rounding noise of a float64 sum, nothing more.
+        if np.any(np.diff(g) > 1e-12 * max(float(g.max()), 0.0)):
+            raise CompressError(f"{where}: gains must be non-increasing (sort the singular values / pair scores)")
+
+    @property
+    def total(self) -> float:
+        """The matrix's whole energy, ``sum(gains)``."""
+        return float(np.sum(np.asarray(self.gains, dtype=np.float64)))
+
+
+# ---------------------------------------------------------------------------------------------- plan types
+
+@dataclass(frozen=True)
+class LayerRanks:
+    """The ranks one layer keeps.
+
+    ``qk``: rotary pairs (rotary families) or per-head rank; ``vo``: rank per key/value group;
+    ``ff``: rank per feed-forward kind, ``None`` = dense. ``qk_pairs`` (rotary only, optional): per key/value
+    group the sorted indices of the kept pairs; ``None`` until a later stage picks them.
+    """
+    layer: int
+    qk: int
+    vo: int
+    ff: Mapping[str, int | None]
+    qk_pairs: tuple[tuple[int, ...], ...] | None = None
+
+    def __post_init__(self):
+        object.__setattr__(self, "ff", MappingProxyType(dict(self.ff)))
+        if self.qk_pairs is not None:
+            object.__setattr__(self, "qk_pairs", tuple(tuple(g) for g in self.qk_pairs))
+
+    def __hash__(self):
+        return hash((self.layer, self.qk, self.vo, tuple(sorted(self.ff.items())), self.qk_pairs))
+
+    def _to_dict(self) -> dict:
+        """Plain-JSON form."""
+        return {"layer": self.layer, "qk": self.qk, "vo": self.vo, "ff": dict(self.ff),
+                "qk_pairs": None if self.qk_pairs is None else [list(g) for g in self.qk_pairs]}
+
+
+@dataclass(frozen=True)
+class ParamCount:
+    """Parameter counts of a plan next to the dense model (only ``block_*`` enter the budget)."""
+    block_kept: int
+    block_dense: int
+    bias_kept: int
+    bias_dense: int
+    embeddings: int  # token, position, token-type tables and an untied output head
+    norms: int
+
+    @property
+    def total_kept(self) -> int:
+        return self.block_kept + self.bias_kept + self.embeddings + self.norms
+
+    @property
+    def total_dense(self) -> int:
+        return self.block_dense + self.bias_dense + self.embeddings + self.norms
+
+
+@dataclass(frozen=True)
+class RankPlan:
+    """A rank for every matrix of every layer, with the predictions made when the plan was built.
+
+    The predicted counts describe the ranks at creation; after editing ranks use :func:`count_params`.
+    """
+    strategy: str
+    keep: float  # the target fraction of block-matrix parameters
+    model: Mapping[str, object]  # shape fingerprint, FINGERPRINT_FIELDS
+    layers: tuple[LayerRanks, ...]
+    block_params_kept: int
+    block_params_dense: int
+    kv_bytes_per_token: int
+    kv_bytes_per_token_dense: int
+    bytes_per_element: int = DEFAULT_BYTES_PER_ELEMENT
+
+    def __post_init__(self):
+        object.__setattr__(self, "model", MappingProxyType(dict(self.model)))
+        object.__setattr__(self, "layers", tuple(self.layers))
+
+    def __hash__(self):
+        return hash((self.strategy, self.keep, tuple(sorted(self.model.items())), self.layers))
+
+    def ranks(self, layer: int) -> LayerRanks:
+        """The ranks of one layer (KeyError if the plan lists none)."""
+        for lr in self.layers:
+            if lr.layer == layer:
+                return lr
+        raise KeyError(layer)
+
+    def with_qk_pairs(self, pairs: Mapping[int, Sequence[Sequence[int]]]) -> "RankPlan":
+        """A copy with ``qk_pairs`` filled in for the given layers (``pairs[layer]: (n_kv_heads, qk)``)."""
+        layers = tuple(dataclasses.replace(lr, qk_pairs=tuple(tuple(sorted(g)) for g in pairs[lr.layer]))
+                       if lr.layer in pairs else lr for lr in self.layers)
+        return dataclasses.replace(self, layers=layers)
+
+    # -- JSON
+    def to_json(self) -> str:
+        """The plan as JSON text (``from_json(plan.to_json()) == plan``)."""
+        data = {
+            "format": PLAN_FORMAT, "version": PLAN_VERSION, "strategy": self.strategy, "keep": self.keep,
+            "model": dict(self.model), "bytes_per_element": self.bytes_per_element,
+            "predicted": {"block_params_kept": self.block_params_kept,
+                          "block_params_dense": self.block_params_dense,
+                          "kv_bytes_per_token": self.kv_bytes_per_token,
+                          "kv_bytes_per_token_dense": self.kv_bytes_per_token_dense},
+            "layers": [lr._to_dict() for lr in self.layers],
+        }
+        return json.dumps(data, indent=1)
+
+    @classmethod
+    def from_json(cls, text: str, source: str = "<plan>") -> "RankPlan":
+        """Read a plan written by :meth:`to_json`.
+
+        Args:
+            text: the JSON text.
+            source: the file name, used in error messages.
+        Returns:
+            The plan (not yet checked against a model: call :meth:`check`).
+        Raises:
+            CompressError: not JSON, another format or version, missing / unknown / mistyped fields.
+        """
+        pre = f"plan {source}"
+        try:
+            data = json.loads(text)
+        except json.JSONDecodeError as exc:
+            raise CompressError(f"{pre}: not valid JSON ({exc}); write the plan with attncompress") from None
+        if not isinstance(data, dict) or data.get("format") != PLAN_FORMAT:
+            raise CompressError(f"{pre}: not a rank plan (expected \"format\": \"{PLAN_FORMAT}\")")
+        if data.get("version") != PLAN_VERSION:
+            raise CompressError(f"{pre}: plan version {data.get('version')!r}, this attncompress reads version "
+                                f"{PLAN_VERSION}; make the plan again")
+        _exact_keys(data, {"format", "version", "strategy", "keep", "model", "bytes_per_element", "predicted",
+                           "layers"}, pre)
+        pred = _typed(data, "predicted", dict, pre)
+        _exact_keys(pred, {"block_params_kept", "block_params_dense", "kv_bytes_per_token",
+                           "kv_bytes_per_token_dense"}, f"{pre} predicted")
+        model = _typed(data, "model", dict, pre)
+        _exact_keys(model, set(FINGERPRINT_FIELDS), f"{pre} model")
+        keep = data["keep"]
+        if isinstance(keep, bool) or not isinstance(keep, (int, float)):
+            raise CompressError(f"{pre}: keep must be a number, got {keep!r}")
+        layers = []
+        for i, item in enumerate(_typed(data, "layers", list, pre)):
+            where = f"{pre} layers[{i}]"
+            if not isinstance(item, dict):
+                raise CompressError(f"{where}: expected an object with layer, qk, vo, ff, qk_pairs")
+            _exact_keys(item, {"layer", "qk", "vo", "ff", "qk_pairs"}, where)
+            ff = _typed(item, "ff", dict, where)
+            pairs = item["qk_pairs"]
+            if pairs is not None and not (isinstance(pairs, list) and all(isinstance(g, list) for g in pairs)):
+                raise CompressError(f"{where}: qk_pairs must be null or a list of lists of pair indices")
+            layers.append(LayerRanks(item["layer"], item["qk"], item["vo"], ff, pairs))
+        return cls(strategy=str(_typed(data, "strategy", str, pre)), keep=keep, model=model, layers=tuple(layers),
+                   block_params_kept=_typed(pred, "block_params_kept", int, pre),
+                   block_params_dense=_typed(pred, "block_params_dense", int, pre),
+                   kv_bytes_per_token=_typed(pred, "kv_bytes_per_token", int, pre),
+                   kv_bytes_per_token_dense=_typed(pred, "kv_bytes_per_token_dense", int, pre),
+                   bytes_per_element=_typed(data, "bytes_per_element", int, pre))
+
+    # -- validation
+    def check(self, shape: ModelShape, source: str = "<plan>") -> None:
+        """Check that the plan fits this model.
+
+        Args:
+            shape: the model the plan is applied to.
+            source: the plan file name, used in error messages.
+        Raises:
+            CompressError: plan of another model, a layer missing / repeated / out of range, a unit count that
+                is not a whole number, below 1 or above the maximum, a feed-forward rank that would not be
+                cheaper than dense, an unknown or missing kind, malformed ``qk_pairs``.
+        """
+        pre = f"plan {source}"
+        differ = [f"{f} {self.model.get(f)!r} in the plan, {getattr(shape, f)!r} in the model"
+                  for f in FINGERPRINT_FIELDS if self.model.get(f) != getattr(shape, f)]
+        if differ:
+            raise CompressError(f"{pre}: made for another model ({'; '.join(differ)}); make a new plan for this model")
+        if not _is_int(self.bytes_per_element) or self.bytes_per_element <= 0:
+            raise CompressError(f"{pre}: bytes_per_element must be a positive whole number, "
+                                f"got {self.bytes_per_element!r}")
+        seen = set()
+        for lr in self.layers:
+            if not _is_int(lr.layer) or not 0 <= lr.layer < shape.n_layers:
+                raise CompressError(f"{pre}: layer {lr.layer!r} does not exist (the model has layers "
+                                    f"0..{shape.n_layers - 1})")
+            if lr.layer in seen:
+                raise CompressError(f"{pre}: layer {lr.layer} is listed twice")
+            seen.add(lr.layer)
+        missing = [i for i in range(shape.n_layers) if i not in seen]
+        if missing:
+            raise CompressError(f"{pre}: layer {missing[0]} missing (the plan lists {len(seen)} of the model's "
+                                f"{shape.n_layers} layers); make the plan again")
+        for lr in self.layers:
+            _check_layer(lr, shape, pre)
+
+
+# ---------------------------------------------------------------------------------------------- counting
+
+def full_plan(shape: ModelShape, bytes_per_element: int = DEFAULT_BYTES_PER_ELEMENT) -> RankPlan:
+    """The identity plan: every matrix at full rank or dense.
+
+    Args:
+        shape: the model.
+        bytes_per_element: bytes of one cached key/value number.
+    Returns:
+        A plan with strategy "full" and keep 1.0.
+    """
+    return _finish(shape, _full_layers(shape), "full", 1.0, bytes_per_element)
+
+
+def count_params(shape: ModelShape, plan: RankPlan) -> ParamCount:
+    """Count the parameters a plan keeps, next to the dense model.
+
+    Biases under the plan: rotary query/key biases keep ``2p`` rows per head; a non-rotary query keeps ``r``
+    bias entries per head and the key bias is dropped (it shifts every score of a query equally, which the
+    softmax ignores); the value bias is folded into the output bias (attention weights sum to 1).
+    Embeddings: token table, position and token-type tables, plus an output head when not tied.
+    Norms: ``2 n_layers + 1`` norms of width ``d_model`` (weight, plus bias for layer norm).
+
+    Args:
+        shape: the model.
+        plan: a plan for it.
+    Returns:
+        The counts.
+    Raises:
+        CompressError: the plan does not fit the model (see :meth:`RankPlan.check`).
+    """
+    plan.check(shape)
+    return _count(shape, plan.layers)
+
+
+def kv_cache_bytes(shape: ModelShape, layers: Sequence[LayerRanks],
+                   bytes_per_element: int = DEFAULT_BYTES_PER_ELEMENT) -> int:
+    """Key/value-cache bytes per token: ``sum_layers n_kv_heads (qk_width + vo_width) bytes_per_element``.
+
+    ``qk_width`` is ``2 p`` for rotary pairs, the rank otherwise; ``vo_width`` is the value rank.
+
+    Args:
+        shape: the model.
+        layers: the ranks of every layer.
+        bytes_per_element: bytes of one cached number (4 for float32).
+    Returns:
+        Bytes per token over all layers.
+    """
+    per_unit = 2 if shape.rotary else 1  # a rotary pair is two cached key numbers
+    return sum(shape.n_kv_heads * (per_unit * lr.qk + lr.vo) * bytes_per_element for lr in layers)
+
+
+def shape_fingerprint(shape: ModelShape) -> dict:
+    """The shape fields a plan is tied to."""
+    return {f: getattr(shape, f) for f in FINGERPRINT_FIELDS}
+
+
+def _count(shape: ModelShape, layers: Sequence[LayerRanks]) -> ParamCount:
+    """Parameter counts of already-checked ranks."""
+    d, nh, nkv, hd, dff = shape.d_model, shape.n_heads, shape.n_kv_heads, shape.head_dim, shape.d_ff
+    costs = {(c.layer, c.kind): c for c in matrix_layout(shape)}
+    block_kept = block_dense = bias_kept = 0
+    for lr in layers:
+        ranks = {"qk": lr.qk, "vo": lr.vo, **lr.ff}
+        for kind, r in ranks.items():
+            c = costs[(lr.layer, kind)]
+            block_dense += c.dense_params
+            block_kept += c.dense_params if r is None else r * c.unit_params
+        if shape.qkv_bias:
+            # Rotary: 2p rows of each query and key bias; otherwise r query-bias entries per head.
+            bias_kept += 2 * lr.qk * (nh + nkv) if shape.rotary else lr.qk * nh
+        if shape.qkv_bias or shape.o_bias:
+            bias_kept += d  # output bias, absorbing the value bias
+    ff_bias = (len(ff_kinds(shape)) - 1) * dff + d if shape.mlp_bias else 0
+    bias_kept += ff_bias * len(layers)
+    bias_dense = shape.n_layers * (((nh + 2 * nkv) * hd if shape.qkv_bias else 0)
+                                   + (d if shape.o_bias else 0) + ff_bias)
+    tables = shape.vocab_size + shape.max_positions + shape.type_vocab_size
+    embeddings = d * (tables + (0 if shape.tied_embeddings else shape.vocab_size))
+    norms = (2 * shape.n_layers + 1) * d * (2 if shape.norm == "layer" else 1)
+    return ParamCount(block_kept, block_dense, bias_kept, bias_dense, embeddings, norms)
+
+
+def _finish(shape: ModelShape, layers: Sequence[LayerRanks], strategy: str, keep: float,
+            bytes_per_element: int) -> RankPlan:
+    """Wrap ranks in a plan with its predicted counts."""
+    layers = tuple(layers)
+    counts = _count(shape, layers)
+    plan = RankPlan(strategy=strategy, keep=float(keep), model=shape_fingerprint(shape), layers=layers,
+                    block_params_kept=counts.block_kept, block_params_dense=counts.block_dense,
+                    kv_bytes_per_token=kv_cache_bytes(shape, layers, bytes_per_element),
+                    kv_bytes_per_token_dense=kv_cache_bytes(shape, _full_layers(shape), bytes_per_element),
+                    bytes_per_element=bytes_per_element)
+    plan.check(shape, source=f"<{strategy} plan>")  # a strategy must never emit an invalid plan
+    return plan
+
+
+def _full_layers(shape: ModelShape) -> tuple[LayerRanks, ...]:
+    """The layers of :func:`full_plan` (full rank, dense feed-forward)."""
+    qk = shape.n_pairs if shape.rotary else shape.head_dim
+    return tuple(LayerRanks(i, qk, shape.head_dim, {k: None for k in ff_kinds(shape)})
+                 for i in range(shape.n_layers))
+
+
+def _check_layer(lr: LayerRanks, shape: ModelShape, pre: str) -> None:
+    """Check one layer's ranks against the shape."""
+    i = lr.layer
+    if shape.rotary:
+        _check_units(lr.qk, shape.n_pairs, f"{pre}: layer {i} qk", "rotary pairs",
+                     f"head_dim {shape.head_dim} has {shape.n_pairs} pairs")
+    else:
+        _check_units(lr.qk, shape.head_dim, f"{pre}: layer {i} qk", "rank", f"head_dim {shape.head_dim}")
+    _check_units(lr.vo, shape.head_dim, f"{pre}: layer {i} vo", "rank", f"head_dim {shape.head_dim}")
+    kinds = ff_kinds(shape)
+    for kind in lr.ff:
+        if kind not in kinds:
+            raise CompressError(f"{pre}: layer {i}: unknown kind {kind!r}; this model's feed-forward has "
+                                f"{', '.join(kinds)}")
+    for kind in kinds:
+        if kind not in lr.ff:
+            raise CompressError(f"{pre}: layer {i} {kind}: no rank given; write a rank or null (dense)")
+        r = lr.ff[kind]
+        if r is None:
+            continue
+        m, n = ff_dims(shape, kind)
+        _check_units(r, min(m, n), f"{pre}: layer {i} {kind}", "rank", f"{m}x{n}")
+        if r * (m + n) >= m * n:
+            raise CompressError(f"{pre}: layer {i} {kind}: rank {r} stores {r * (m + n)} parameters, not fewer "
+                                f"than dense {m}x{n} = {m * n}; write null (dense) or a rank of at most "
+                                f"{ff_max_rank(m, n)}")
+    if lr.qk_pairs is not None:
+        where = f"{pre}: layer {i} qk_pairs"
+        if not shape.rotary:
+            raise CompressError(f"{where}: only rotary models keep pairs; write null")
+        if len(lr.qk_pairs) != shape.n_kv_heads:
+            raise CompressError(f"{where}: {len(lr.qk_pairs)} groups listed, the model has {shape.n_kv_heads} "
+                                f"key/value groups")
+        for g, group in enumerate(lr.qk_pairs):
+            if len(group) != lr.qk:
+                raise CompressError(f"{where} group {g}: {len(group)} pairs listed, qk keeps {lr.qk}")
+            ok = all(_is_int(p) and 0 <= p < shape.n_pairs for p in group)
+            if not ok or any(a >= b for a, b in zip(group, group[1:])):
+                raise CompressError(f"{where} group {g}: expected sorted distinct pair indices in "
+                                    f"0..{shape.n_pairs - 1}, got {list(group)}")
+
+
+def _check_units(value, maximum: int, where: str, what: str, why: str) -> None:
+    """A unit count must be a whole number in 1..maximum."""
+    if not _is_int(value):
+        raise CompressError(f"{where}: expected a whole number ({what}), got {value!r}")
+    if value <= 0:
+        raise CompressError(f"{where}: {what} {value}; every matrix keeps at least 1")
+    if value > maximum:
+        raise CompressError(f"{where}: {what} {value} is above the maximum {maximum} ({why}); lower it")
+
+
+def _is_int(x) -> bool:
+    """A whole number that is not a bool."""
+    return isinstance(x, int) and not isinstance(x, bool)
+
+
+def _typed(data: dict, key: str, typ: type, where: str):
+    """``data[key]`` checked to be of ``typ`` (bools are not ints)."""
+    value = data[key]
+    if not isinstance(value, typ) or (typ is int and isinstance(value, bool)):
+        raise CompressError(f"{where}: field {key!r} must be {typ.__name__}, got {value!r}")
+    return value
+
+
+def _exact_keys(data: dict, keys: set, where: str) -> None:
+    """The JSON object has exactly these fields."""
+    missing, extra = sorted(keys - set(data)), sorted(set(data) - keys)
+    if missing:
+        raise CompressError(f"{where}: missing field {missing[0]!r}")
+    if extra:
+        raise CompressError(f"{where}: unknown field {extra[0]!r}")
+
+
+# ---------------------------------------------------------------------------------------------- strategies
+
+def _check_keep(keep) -> float:
+    """``--keep`` must be a number in (0, 1]."""
+    if isinstance(keep, bool) or not isinstance(keep, (int, float)) or not math.isfinite(keep) \
+            or not 0 < keep <= 1:
+        raise CompressError(f"--keep: expected the fraction of block-matrix parameters to keep, in (0, 1], "
+                            f"got {keep!r}; e.g. --keep 0.5")
+    return float(keep)
+
+
+def _check_spectra(spectra: Sequence[MatrixSpectrum], shape: ModelShape) -> list[MatrixSpectrum]:
+    """One spectrum per matrix of the model, priced as :func:`matrix_layout` prices it; returned in layout order."""
+    layout = matrix_layout(shape)
+    by_key = {}
+    for s in spectra:
+        key = (s.layer, s.kind)
+        if key in by_key:
+            raise CompressError(f"spectra: layer {s.layer} {s.kind!r} given twice")
+        by_key[key] = s
+    wanted = {(c.layer, c.kind) for c in layout}
+    for key in by_key:
+        if key not in wanted:
+            raise CompressError(f"spectra: layer {key[0]} {key[1]!r} is not a matrix of this model")
+    out = []
+    for c in layout:
+        s = by_key.get((c.layer, c.kind))
+        if s is None:
+            raise CompressError(f"spectra: no spectrum for layer {c.layer} {c.kind!r}")
+        for f in ("unit", "max_units", "unit_params", "dense_params"):
+            if getattr(s, f) != getattr(c, f):
+                raise CompressError(f"spectra: layer {c.layer} {c.kind!r} has {f} {getattr(s, f)!r}, this model "
+                                    f"needs {getattr(c, f)!r}; build spectra from matrix_layout(shape)")
+        out.append(s)
+    return out
+
+
+def _check_option(name: str, value, kind: str) -> None:
+    """Strategy options: 'int>=1', 'fraction' in (0, 1], 'bool'."""
+    if kind == "int>=1" and not (_is_int(value) and value >= 1):
+        raise CompressError(f"strategy option {name}: expected a whole number >= 1, got {value!r}")
+    if kind == "fraction" and (isinstance(value, bool) or not isinstance(value, (int, float))
+                               or not 0 < value <= 1):
+        raise CompressError(f"strategy option {name}: expected a fraction in (0, 1], got {value!r}")
+    if kind == "bool" and not isinstance(value, bool):
+        raise CompressError(f"strategy option {name}: expected true or false, got {value!r}")
+
+
+def _prepare(spectra, shape, keep, bytes_per_element):
+    """Validate the common inputs; returns (ordered spectra, dense total, budget)."""
+    keep = _check_keep(keep)
+    _check_option("bytes_per_element", bytes_per_element, "int>=1")
+    spectra = _check_spectra(spectra, shape)
+    dense = sum(s.dense_params for s in spectra)
+    # kept <= keep * dense  <=>  kept <= floor(keep * dense) for whole kept counts.
+    return spectra, dense, math.floor(keep * dense)
+
+
+def _kcap(s: MatrixSpectrum) -> int:
+    """The most units that still cost less than dense (qk/vo: max_units - 1; FF: the highest paying rank)."""
+    return min(s.max_units, (s.dense_params - 1) // s.unit_params)
+
+
+def _settle(s: MatrixSpectrum, k: int) -> int:
+    """Map a unit count that would cost at least dense to ``max_units`` (the full / dense state)."""
+    return s.max_units if k > _kcap(s) else k
+
+
+def _cost(s: MatrixSpectrum, k: int) -> int:
+    """Block-matrix parameters of one matrix at ``k`` units (dense once factors stop paying)."""
+    return min(k * s.unit_params, s.dense_params)
+
+
+def _total_cost(spectra, units) -> int:
+    """Block-matrix parameters of a whole assignment."""
+    return sum(_cost(s, k) for s, k in zip(spectra, units))
+
+
+def _too_small(keep: float, budget: int, dense: int, need: int, floor: str) -> CompressError:
+    """The error for a budget below the smallest plan."""
+    least = math.ceil(need / dense * 1e4) / 1e4
+    return CompressError(f"--keep {keep}: the budget is {budget} of {dense} block-matrix parameters but the "
+                         f"smallest plan ({floor}) needs {need}; raise --keep to at least {least}")
+
+
+def _plan_from_units(spectra, units, shape, strategy, keep, bytes_per_element) -> RankPlan:
+    """Turn unit counts (``max_units`` = full / dense) into a checked plan."""
+    per_layer: dict[int, dict[str, int | None]] = {}
+    for s, k in zip(spectra, units):
+        assert 1 <= k <= s.max_units
+        dense = s.kind in FF_KINDS and k * s.unit_params >= s.dense_params
+        per_layer.setdefault(s.layer, {})[s.kind] = None if dense else k
+    layers = tuple(LayerRanks(i, r["qk"], r["vo"], {f: r[f] for f in ff_kinds(shape)})
+                   for i, r in sorted(per_layer.items()))
+    return _finish(shape, layers, strategy, keep, bytes_per_element)
+
+
+def _bisect(spectra, units_at: Callable[[float], list[int]], budget: int, keep: float, dense: int,
+            floor: str) -> list[int]:
+    """Largest ``t`` in [0, 1] whose assignment ``units_at(t)`` fits the budget (costs are monotone in t)."""
+    lo_units = units_at(0.0)
+    need = _total_cost(spectra, lo_units)
+    if need > budget:
+        raise _too_small(keep, budget, dense, need, floor)
+    hi_units = units_at(1.0)
+    if _total_cost(spectra, hi_units) <= budget:
+        return hi_units
+    lo, hi = 0.0, 1.0
+    # 60 halvings reach float64 resolution: the step of the cost curve is found as closely as t can say.
+    for _ in range(60):
+        mid = 0.5 * (lo + hi)
+        units = units_at(mid)
+        if _total_cost(spectra, units) <= budget:
+            lo, lo_units = mid, units
+        else:
+            hi = mid
+    return lo_units
+
+
+def plan_uniform(spectra: Sequence[MatrixSpectrum], shape: ModelShape, keep: float, *, min_units: int = 1,
+                 bytes_per_element: int = DEFAULT_BYTES_PER_ELEMENT) -> RankPlan:
+    """One factor ``f`` scales every matrix: ``k = round(f * max_units)``, at least ``min_units``.
+
+    ``f`` is bisected to the largest value whose plan keeps at most ``keep`` of the block-matrix parameters.
+    A feed-forward rank that would not be cheaper than dense stays dense.
+
+    Args:
+        spectra: one per matrix of the model (only prices are used).
+        shape: the model.
+        keep: fraction of block-matrix parameters to keep, in (0, 1].
+        min_units: floor on every matrix's units.
+        bytes_per_element: bytes of one cached key/value number, for the KV prediction.
+    Returns:
+        The plan.
+    Raises:
+        CompressError: bad keep / option, spectra not matching the model, or a budget below every matrix at
+            ``min_units``.
+    """
+    _check_option("min_units", min_units, "int>=1")
+    spectra, dense, budget = _prepare(spectra, shape, keep, bytes_per_element)
+
+    def units_at(f: float) -> list[int]:
+        # floor(x + 0.5): round half up, so the rank never shrinks as f grows.
+        return [_settle(s, min(s.max_units, max(min_units, math.floor(f * s.max_units + 0.5)))) for s in spectra]
+
+    units = _bisect(spectra, units_at, budget, keep, dense, f"every matrix at {min_units} unit(s)")
+    return _plan_from_units(spectra, units, shape, "uniform", keep, bytes_per_element)
+
+
+def plan_energy(spectra: Sequence[MatrixSpectrum], shape: ModelShape, keep: float, *, min_units: int = 1,
+                bytes_per_element: int = DEFAULT_BYTES_PER_ELEMENT) -> RankPlan:
+    """Every matrix keeps the fewest units that reach one energy fraction ``e``; ``e`` is bisected to the budget.
+
+    Args:
+        spectra: one per matrix of the model.
+        shape: the model.
+        keep: fraction of block-matrix parameters to keep, in (0, 1].
+        min_units: floor on every matrix's units.
+        bytes_per_element: bytes of one cached key/value number.
+    Returns:
+        The plan.
+    Raises:
+        CompressError: as :func:`plan_uniform`.
+    """
+    _check_option("min_units", min_units, "int>=1")
+    spectra, dense, budget = _prepare(spectra, shape, keep, bytes_per_element)
+    cums = [np.cumsum(np.asarray(s.gains, dtype=np.float64)) for s in spectra]  # (max_units,) each
+
+    def units_at(e: float) -> list[int]:
+        out = []
+        for s, c in zip(spectra, cums):
+            # First index whose cumulative energy reaches e * total; comparing sums avoids dividing.
+            k = int(np.searchsorted(c, e * c[-1], side="left")) + 1
+            out.append(_settle(s, min(s.max_units, max(min_units, k))))
+        return out
+
+    units = _bisect(spectra, units_at, budget, keep, dense, f"every matrix at {min_units} unit(s)")
+    return _plan_from_units(spectra, units, shape, "energy", keep, bytes_per_element)
+
+
+def _upper_hull(points: list[tuple[int, float, int]]) -> list[tuple[int, float, int]]:
+    """Upper concave hull of (cost, energy, units) points sorted by cost; collinear middles are dropped."""
+    hull: list[tuple[int, float, int]] = []
+    for p in points:
+        # Pop the last vertex while it lies on or below the chord from its predecessor to p.
+        while len(hull) >= 2:
+            (x0, y0, _), (x1, y1, _) = hull[-2], hull[-1]
+            if (x1 - x0) * (p[1] - y1) - (y1 - y0) * (p[0] - x1) >= 0:
+                hull.pop()
+            else:
+                break
+        hull.append(p)
+    return hull
+
+
+def plan_global(spectra: Sequence[MatrixSpectrum], shape: ModelShape, keep: float, *,
+                min_fraction: float = 0.125, min_units: int | None = None, normalise: bool = True,
+                bytes_per_element: int = DEFAULT_BYTES_PER_ELEMENT) -> RankPlan:
+    """Greedy allocation across all matrices by energy gained per parameter.
+
+    Every matrix starts at ``min_units`` (default ``max(1, ceil(min_fraction * max_units))``). Units are then
+    bought, best energy per parameter first, until the budget is spent. A feed-forward matrix's last step is
+    the switch to dense: from its highest paying rank ``r*`` it costs ``m n - r* (m + n)`` (at most one unit)
+    and wins all the remaining energy, so it is the best-value step of that matrix. Because that makes the
+    matrix's value curve non-concave, the greedy walks each matrix's upper concave hull of (cost, energy)
+    points (a hull edge may span several units; e.g. a flat spectrum jumps straight to dense). When a matrix's
+    next edge no longer fits, that matrix goes on one unit at a time (in the same best-value-first queue), so
+    less than one unit's price of budget is left unspent. Units that win no energy are never bought.
+
+    ``normalise=True`` divides each matrix's gains by its total energy, so a unit's value is the relative
+    reduction of that matrix's squared error (every matrix counts alike whatever its norm).
+    ``normalise=False`` compares raw energies, favouring matrices with large singular values.
+
+    Args:
+        spectra: one per matrix of the model.
+        shape: the model.
+        keep: fraction of block-matrix parameters to keep, in (0, 1].
+        min_fraction: starting units as a fraction of each matrix's maximum.
+        min_units: starting units for every matrix (overrides ``min_fraction``; capped at the maximum).
+        normalise: compare gains relative to each matrix's total energy.
+        bytes_per_element: bytes of one cached key/value number.
+    Returns:
+        The plan.
+    Raises:
+        CompressError: bad keep / option, spectra not matching the model, or a budget below the starting plan.
+    """
+    _check_option("min_fraction", min_fraction, "fraction")
+    if min_units is not None:
+        _check_option("min_units", min_units, "int>=1")
+    _check_option("normalise", normalise, "bool")
+    spectra, dense, budget = _prepare(spectra, shape, keep, bytes_per_element)
+
+    units, cums, hulls = [], [], []
+    for s in spectra:
+        start = min_units if min_units is not None else max(1, math.ceil(min_fraction * s.max_units))
+        k0 = _settle(s, min(s.max_units, start))
+        g = np.asarray(s.gains, dtype=np.float64)
+        total = float(g.sum())
+        if normalise and total > 0:
+            g = g / total  # relative error reduction per unit
+        c = np.concatenate([[0.0], np.cumsum(g)])  # (max_units + 1,): energy kept at k units
+        cums.append(c)
+        units.append(k0)
+        if k0 == s.max_units:
+            hulls.append([])
+            continue
+        kc = _kcap(s)
+        # States: k0..kcap factored, then full / dense (cost dense_params, all the energy).
+        pts = [(k * s.unit_params, float(c[k]), k) for k in range(k0, kc + 1)]
+        pts.append((s.dense_params, float(c[s.max_units]), s.max_units))
+        hulls.append(_upper_hull(pts))
+
+    need = _total_cost(spectra, units)
+    floor = f"every matrix at {min_units} unit(s)" if min_units is not None else \
+        f"every matrix at {min_fraction:g} of its maximum units"
+    if need > budget:
+        raise _too_small(keep, budget, dense, need, floor)
+    remaining = budget - need
+
+    # One heap of next moves: a whole hull edge while the matrix is in "edge" mode, then single steps (one
+    # unit, or the switch to dense from the highest paying rank) once an edge has failed to fit.
+    pos = [0] * len(spectra)  # current hull vertex per matrix
+    single = [False] * len(spectra)
+    heap: list[tuple[float, int]] = []
+
+    def move(i: int):
+        """(cost, energy, units after) of matrix i's next move, or None when it has none."""
+        s, k, c = spectra[i], units[i], cums[i]
+        if not single[i]:
+            h = hulls[i]
+            if pos[i] + 1 >= len(h):
+                return None
+            (x0, y0, _), (x1, y1, k1) = h[pos[i]], h[pos[i] + 1]
+            return x1 - x0, y1 - y0, k1
+        if k >= s.max_units:
+            return None
+        nxt = s.max_units if k + 1 > _kcap(s) else k + 1
+        return _cost(s, nxt) - _cost(s, k), float(c[nxt] - c[k]), nxt
+
+    def push(i: int) -> None:
+        """Queue matrix i's next move by energy per parameter (ties: layout order)."""
+        mv = move(i)
+        if mv is not None and mv[1] > 0:  # never buy units that win nothing
+            heapq.heappush(heap, (-mv[1] / mv[0], i))
+
+    for i in range(len(spectra)):
+        push(i)
+    while heap:
+        _, i = heapq.heappop(heap)
+        dc, _, nxt = move(i)
+        if dc <= remaining:
+            remaining -= dc
+            units[i] = nxt
+            if not single[i]:
+                pos[i] += 1
+            push(i)
+        elif not single[i]:
+            # Later hull edges are worse value; keep filling this matrix one unit at a time.
+            single[i] = True
+            push(i)
+        # A single step that does not fit is the matrix's last: the budget only shrinks.
+    assert _total_cost(spectra, units) == budget - remaining
+    return _plan_from_units(spectra, units, shape, "global", keep, bytes_per_element)
+
+
+STRATEGIES: dict[str, Callable[..., RankPlan]] = {"uniform": plan_uniform, "energy": plan_energy,
+                                                  "global": plan_global}
+
+
+def make_plan(spectra: Sequence[MatrixSpectrum], shape: ModelShape, keep: float, strategy: str = "global",
+              **opts) -> RankPlan:
+    """Choose ranks with a named strategy.
+
+    Args:
+        spectra: one :class:`MatrixSpectrum` per matrix of the model (see :func:`matrix_layout`).
+        shape: the model.
+        keep: fraction of block-matrix parameters to keep, in (0, 1] (``--keep``).
+        strategy: a key of :data:`STRATEGIES` (``--strategy``).
+        **opts: that strategy's keyword options.
+    Returns:
+        A plan whose block-matrix parameters are at most ``keep`` times the dense count.
+    Raises:
+        CompressError: keep outside (0, 1], unknown strategy or option, spectra not matching the model,
+            a budget that even the smallest plan exceeds.
+    """
+    _check_keep(keep)
+    if strategy not in STRATEGIES:
+        raise CompressError(f"--strategy: unknown strategy {strategy!r}; expected one of "
+                            f"{', '.join(sorted(STRATEGIES))}")
+    fn = STRATEGIES[strategy]
+    allowed = [p for p in inspect.signature(fn).parameters.values() if p.kind is p.KEYWORD_ONLY]
+    names = [p.name for p in allowed]
+    for name in opts:
+        if name not in names:
+            raise CompressError(f"strategy {strategy!r} has no option {name!r}; its options are {', '.join(names)}")
+    return fn(spectra, shape, keep, **opts)

@@ -1,0 +1,41 @@
+"""A small progress line on stderr: step, rate and time left."""
+from __future__ import annotations
+
+import sys
+import time
+
+
+class Progress:
+    """`with Progress(total, "perplexity", unit="tok") as p: p.update(n, loss=…)`; silent when quiet."""
+
+    def __init__(self, total: int, label: str, unit: str = "it", quiet: bool = False, every: float = 0.5):
+        self.total, self.label, self.unit, self.quiet, self.every = total, label, unit, quiet, every
+        self.done, self.t0, self.last = 0, time.perf_counter(), 0.0
+        self.tty = sys.stderr.isatty()
+        self.fields: dict[str, str] = {}
+
+    def update(self, n: int = 1, **fields) -> None:
+        self.done += n
+        self.fields.update({k: (f"{v:.4g}" if isinstance(v, float) else str(v)) for k, v in fields.items()})
+        now = time.perf_counter()
+        if not self.quiet and (now - self.last >= (self.every if self.tty else 10.0) or self.done >= self.total):
+            self.last = now
+            self._draw(now)
+
+    def _draw(self, now: float) -> None:
+        el = now - self.t0
+        rate = self.done / el if el > 0 else 0.0
+        left = (self.total - self.done) / rate if rate > 0 else 0.0
+        extra = " ".join(f"{k} {v}" for k, v in self.fields.items())
+        line = (f"{self.label}: {self.done}/{self.total} {self.unit} | {rate:.1f} {self.unit}/s | "
+                f"{el:.0f}s elapsed, {left:.0f}s left {extra}").rstrip()
+        sys.stderr.write(("\r" + line + "\x1b[K") if self.tty else line + "\n")
+        sys.stderr.flush()
+
+    def __enter__(self):
+        return self
+
+    def __exit__(self, *exc):
+        if not self.quiet and self.tty:
+            sys.stderr.write("\n")
+        return False
