@@ -11,16 +11,14 @@ import torch
 from . import analysis, evaluate
 from . import plan as planlib
 from .progress import Progress
+from . import compress as pipeline
+from .compress import compress  # noqa: F401  (the API's compress)
 from .errors import CompressError
-from .io.load import load_model, load_weights
+from .io.load import load_model, load_weights, tokens
 from .models import resolve
 from .texts import read_lines, read_texts
 
 
-def _tokens(loaded, text: str) -> list[int]:
-    if loaded.tokenizer is None:
-        raise CompressError(f"{loaded.path}: no tokenizer found; expected tokenizer.json beside the weights or GGUF metadata")
-    return loaded.tokenizer.encode(text).ids
 
 
 def inspect(path: str, heads: int | None = None, kv_heads: int | None = None) -> dict:
@@ -76,7 +74,7 @@ def perplexity(path: str, texts: list[str], context: int = 512, stride: int | No
     loaded = load_model(resolve(path))
     if not loaded.model.is_decoder:
         raise CompressError(f"{loaded.path}: perplexity needs a decoder; this {loaded.shape.family} model is an encoder")
-    ids = _tokens(loaded, text)
+    ids = tokens(loaded, text)
     if max_tokens:
         ids = ids[:max_tokens]
     out = evaluate.perplexity(loaded.model, ids, context=context, stride=stride, quiet=quiet)
@@ -95,74 +93,11 @@ def embed(path: str, text: str, batch: int = 32) -> dict:
     return {"path": str(loaded.path), "lines": lines, "embeddings": e.tolist(), "dim": e.shape[1]}
 
 
-# ----------------------------------------------------------------------------------------------- compress
-
-CALIB_CONTEXT = 128
-CALIB_BLOCKS = 256
-
-
-@dataclass
-class Analysed:
-    """A source model with its walk, weights, calibration statistics and spectra."""
-    loaded: object
-    weights: dict
-    stats: list | None
-    roots: list
-    spectra: list[dict]
-    calibration: dict | None
-    timer: object
-
-
-def _calibration_blocks(loaded, texts: list[str], context: int, n_blocks: int):
-    text, described = read_texts(texts)
-    ids = _tokens(loaded, text)
-    from .texts import token_blocks
-    blocks = token_blocks(ids, context, source=", ".join(str(t) for t in texts))
-    if blocks.shape[0] > n_blocks:
-        # evenly spaced blocks cover the whole text, not only its beginning
-        idx = torch.linspace(0, blocks.shape[0] - 1, n_blocks).round().long()
-        blocks = blocks[idx]
-    digest = hashlib.sha256(blocks.numpy().tobytes()).hexdigest()
-    return blocks, {"files": described, "context": context, "blocks": int(blocks.shape[0]),
-                    "tokens": int(blocks.numel()), "tokens_sha256": digest}
-
-
-def analyse(path: str, texts: list[str] | None = None, *, damping: float = 0.01, context: int = CALIB_CONTEXT,
-            n_blocks: int = CALIB_BLOCKS, quiet: bool = False, heads=None, kv_heads=None) -> Analysed:
-    """Load a source model, collect calibration statistics (when texts are given) and compute all spectra."""
-    from .compress import Timer
-    timer = Timer()
-    loaded = load_model(resolve(path), heads, kv_heads)
-    if loaded.manifest is not None:
-        raise CompressError(f"{loaded.path}: already compressed; analyse and compress the source model instead")
-    weights = {n: p.detach() for n, p in _canonical_from_model(loaded)}
-    timer.lap("load")
-    stats = calib = None
-    if texts:
-        blocks, calib = _calibration_blocks(loaded, texts, min(context, loaded.shape.max_positions or context), n_blocks)
-        stats = analysis.collect_stats(loaded.model, blocks, quiet=quiet)
-        timer.lap("calibrate")
-    sh = loaded.shape
-    roots, spectra = [], []
-    with Progress(sh.n_layers, "spectra", unit="layer", quiet=quiet) as bar:
-        for i in range(sh.n_layers):
-            r = analysis.layer_roots(stats[i] if stats else None, damping, with_bias_row=not sh.rotary and sh.qkv_bias)
-            roots.append(r)
-            spectra.append(analysis.layer_spectra(sh, weights, i, r))
-            bar.update(1)
-    timer.lap("spectra")
-    return Analysed(loaded, weights, stats, roots, spectra, calib, timer)
-
-
-def _canonical_from_model(loaded):
-    """Canonical weights again from the walk (the runtime holds the same tensors)."""
-    from . import arch
-    return arch.canonical_weights(loaded.source, loaded.walk)
-
+# ------------------------------------------------------------------------------------ spectra and plans
 
 def spectrum(path: str, texts: list[str] | None = None, damping: float = 0.01, quiet: bool = False) -> dict:
     """All spectra and energy-kept curves of a source model (whitened when texts are given)."""
-    an = analyse(path, texts, damping=damping, quiet=quiet)
+    an = pipeline.analyse(path, texts, damping=damping, quiet=quiet)
     layers = []
     for i, sp in enumerate(an.spectra):
         entry = {"layer": i}
@@ -176,95 +111,104 @@ def spectrum(path: str, texts: list[str] | None = None, damping: float = 0.01, q
             "damping": damping, "calibration": an.calibration, "layers": layers}
 
 
-def make_rank_plan(an: Analysed, keep: float | None, strategy: str, plan_file: str | None) -> "planlib.RankPlan":
-    from .compress import check_plan_ranks, choose_pairs, spectra_list
-    sh = an.loaded.shape
-    if plan_file:
-        try:
-            text = Path(plan_file).read_text(encoding="utf-8")
-        except (OSError, UnicodeDecodeError) as e:
-            raise CompressError(f"{plan_file}: cannot read the plan ({e.__class__.__name__})") from None
-        p = planlib.RankPlan.from_json(text, source=plan_file)
-        check_plan_ranks(sh, p, plan_file)
-    else:
-        if keep is None:
-            raise CompressError("give --keep F (fraction of block-matrix parameters to keep) or --plan FILE")
-        if strategy not in planlib.STRATEGIES:
-            raise CompressError(f"--strategy {strategy!r} is unknown; expected one of {', '.join(planlib.STRATEGIES)}")
-        p = planlib.make_plan(spectra_list(sh, an.spectra), sh, keep, strategy)
-    return choose_pairs(sh, p, an.spectra)
-
-
 def plan(path: str, out: str | None, keep: float | None = None, strategy: str = "global",
          texts: list[str] | None = None, damping: float = 0.01, quiet: bool = False) -> dict:
     """Choose ranks under a budget and (with `out`) write the plan JSON for the user to edit."""
-    an = analyse(path, texts, damping=damping, quiet=quiet)
-    p = make_rank_plan(an, keep, strategy, None)
+    an = pipeline.analyse(path, texts, damping=damping, quiet=quiet)
+    p = pipeline.make_rank_plan(an, keep, strategy, None)
     if out:
         from .io.write import write_json_atomic
         import json
         write_json_atomic(out, json.loads(p.to_json()))
-    return {"plan": p, "summary": plan_summary(an.loaded.shape, p)}
+    return {"plan": p, "summary": planlib.summary(an.loaded.shape, p)}
 
 
-def plan_summary(shape, p) -> dict:
-    pc = planlib.count_params(shape, p)
-    return {"strategy": p.strategy, "keep": p.keep, "block_params_kept": pc.block_kept,
-            "block_params_dense": pc.block_dense, "kept_fraction": pc.block_kept / pc.block_dense,
-            "kv_bytes_per_token": planlib.kv_cache_bytes(shape, p.layers, p.bytes_per_element),
-            "kv_bytes_per_token_dense": planlib.kv_cache_bytes(shape, planlib.full_plan(shape).layers,
-                                                               p.bytes_per_element),
-            "layers": [{"layer": lr.layer, "qk": lr.qk, "vo": lr.vo, **{k: v for k, v in lr.ff.items()}}
-                       for lr in p.layers]}
 
+# ----------------------------------------------------------------------------------------------------- expand
 
-def compress(path: str, out: str, *, keep: float | None = None, plan_file: str | None = None,
-             strategy: str = "global", texts: list[str] | None = None, weights_only: bool = False,
-             damping: float = 0.01, force: bool = False, quiet: bool = False, context: int = CALIB_CONTEXT,
-             n_blocks: int = CALIB_BLOCKS) -> dict:
-    """Compress a source checkpoint into a directory our runtime (and `expand`) reads.
+def densify(shape, weights: dict) -> dict:
+    """Compressed canonical weights → dense canonical weights of the original shapes (exactly the same function).
 
-    Raises:
-        CompressError: bad options, inputs or plan; the output exists without `force`.
+    Feed-forward factors multiply back (a @ bᵀ). Narrowed heads are padded with zero rows/columns at the
+    dimensions they dropped: a zero query/key dimension adds nothing to any score, and rotary rotation never
+    mixes one pair with another, so kept pairs go back to their own rows.
     """
-    from .compress import FORMAT_VERSION, factorize_layer, sha256_file
-    from .io.write import atomic_dir, check_output, write_model_dir
+    from . import arch
+    hd, h, g = shape.head_dim, shape.n_heads, shape.n_kv_heads
+    out = {}
+    for name, t in weights.items():
+        if name.endswith(".pairs"):
+            continue
+        if name.endswith(".b") and name[:-2] + ".a" in weights:
+            continue
+        if name.endswith(".a"):
+            out[name[:-2] + ".weight"] = (weights[name].double() @ weights[name[:-2] + ".b"].double().T).float()
+        else:
+            out[name] = t
+    for i in range(shape.n_layers):
+        p = f"layers.{i}.attn."
+        pairs = weights.get(p + "pairs")
+        w_qk = out[p + "q.weight"].shape[0] // h
+        if pairs is not None:
+            dims = torch.cat([pairs, pairs + hd // 2], dim=1)  # (g, 2p) kept rows per group
+        else:
+            dims = torch.arange(w_qk).expand(g, -1)  # refactorised heads fill their first w_qk rows
+        rep = h // g
+        for m, n, idx in (("q", h, dims.repeat_interleave(rep, 0)), ("k", g, dims)):
+            for leaf in ("weight", "bias"):
+                if p + f"{m}.{leaf}" in out:
+                    out[p + f"{m}.{leaf}"] = _scatter_rows(out[p + f"{m}.{leaf}"], n, hd, idx)
+        w_vo = out[p + "v.weight"].shape[0] // g
+        vidx = torch.arange(w_vo).expand(g, -1)
+        out[p + "v.weight"] = _scatter_rows(out[p + "v.weight"], g, hd, vidx)
+        if p + "v.bias" in out:
+            out[p + "v.bias"] = _scatter_rows(out[p + "v.bias"], g, hd, vidx)
+        out[p + "o.weight"] = _scatter_rows(out[p + "o.weight"].T, h, hd, torch.arange(w_vo).expand(h, -1)).T.contiguous()
+    order = arch.canonical_names(shape)
+    return {n: out[n] for n in order if n in out} | {n: t for n, t in out.items() if n not in order}
+
+
+def _scatter_rows(t, n: int, hd: int, idx) -> torch.Tensor:
+    """(n*k, ...) rows → (n*hd, ...) with head j's k rows placed at idx[j] and zeros elsewhere."""
+    k = t.shape[0] // n
+    full = torch.zeros((n, hd) + tuple(t.shape[1:]), dtype=t.dtype)
+    full.scatter_(1, idx.reshape(n, k, *([1] * (t.dim() - 1))).expand(n, k, *t.shape[1:]), t.reshape(n, k, *t.shape[1:]))
+    return full.reshape((n * hd,) + tuple(t.shape[1:]))
+
+
+def expand(path: str, out: str, force: bool = False) -> dict:
+    """Multiply a compressed directory back into a dense model directory of the source family's layout."""
+    import dataclasses
+    from . import arch
+    from .io.load import is_compressed
+    from .io.write import atomic_dir, check_output, dumps, save_tensors
     check_output(out, force)
-    if not texts and not weights_only:
-        raise CompressError("give calibration text with --text FILE, or pass --weights-only for plain SVD")
-    if texts and weights_only:
-        raise CompressError("--text and --weights-only exclude each other")
-    an = analyse(path, texts, damping=damping, quiet=quiet, context=context, n_blocks=n_blocks)
-    sh = an.loaded.shape
-    p = make_rank_plan(an, keep, strategy, plan_file)
-    new: dict[str, torch.Tensor] = {n: t for n, t in an.weights.items() if not n.startswith("layers.")}
-    with Progress(sh.n_layers, "factorise", unit="layer", quiet=quiet) as bar:
-        for i in range(sh.n_layers):
-            new.update(factorize_layer(sh, an.weights, i, p.ranks(i), an.roots[i]))
-            bar.update(1)
-    an.timer.lap("factorise")
-    src = an.loaded.source
-    manifest = {
-        "format_version": FORMAT_VERSION, "tool": "attncompress", "tool_version": _version(),
-        "source": {"path": Path(str(src.path)).name, "format": src.format,
-                   "files": [{"name": f.name, "bytes": f.stat().st_size, "sha256": sha256_file(f)} for f in src.files]},
-        "family": sh.family, "model_type": (src.config or {}).get("model_type"),
-        "shape": json.loads(sh.to_json()), "plan": json.loads(p.to_json()),
-        "method": {"factors": "whitened" if texts else "svd", "damping": damping if texts else None,
-                   "spectral_split": "sqrt(S) on both factors"},
-        "calibration": an.calibration,
-    }
+    if not is_compressed(path):
+        raise CompressError(f"{path}: not a directory written by attncompress compress; nothing to expand")
+    shape, weights, source, _, manifest = load_weights(path)
+    dense = densify(shape, weights)
+    adapter = arch.ADAPTERS[shape.family]
+    cfg_path = Path(path) / "source-config.json"
+    config = json.loads(cfg_path.read_text(encoding="utf-8")) if cfg_path.is_file() else None
+    if config is None:
+        raise CompressError(f"{cfg_path}: missing; expected the source config written by compress")
+    has_o_bias = any(n.endswith("attn.o.bias") for n in dense)
+    if has_o_bias and not shape.o_bias:
+        if shape.family == "llama" and config.get("model_type") == "qwen2":
+            raise CompressError(f"{path}: the folded value bias needs an output bias, which the qwen2 layout lacks; "
+                                "use the compressed directory directly")
+        config = dict(config, attention_bias=True)  # llama layout: biases on q, k, v and o
+        for i in range(shape.n_layers):
+            for m in ("q", "k", "v"):
+                dense.setdefault(f"layers.{i}.attn.{m}.bias", torch.zeros(dense[f"layers.{i}.attn.{m}.weight"].shape[0]))
+        shape = dataclasses.replace(shape, o_bias=True, qkv_bias=True)
+    tensors = arch.to_source_layout(adapter, shape, dense)
     with atomic_dir(out, force) as tmp:
-        write_model_dir(tmp, new, manifest, an.loaded.tokenizer, src.config)
-    an.timer.lap("write")
-    summary = plan_summary(sh, p)
-    return {"out": str(out), "source": str(src.path), "method": manifest["method"], "plan": summary,
-            "seconds": an.timer.stages}
-
-
-def _version() -> str:
-    try:
-        import importlib.metadata
-        return importlib.metadata.version("attncompress")
-    except Exception:
-        return "0+unknown"
+        save_tensors(tmp / "model.safetensors", tensors)
+        (tmp / "config.json").write_text(dumps(config), encoding="utf-8")
+        tok = Path(path) / "tokenizer.json"
+        if tok.is_file():
+            (tmp / "tokenizer.json").write_bytes(tok.read_bytes())
+            (tmp / "tokenizer_config.json").write_text(dumps({"tokenizer_class": "PreTrainedTokenizerFast"}),
+                                                       encoding="utf-8")
+    return {"out": str(out), "tensors": len(tensors), "parameters": sum(t.numel() for t in tensors.values())}

@@ -105,7 +105,7 @@ def _bert_shape(cfg: dict, path: str) -> ModelShape:
     return ModelShape(
         family="bert", n_layers=int(_get(cfg, "num_hidden_layers", path)), d_model=d, n_heads=h, n_kv_heads=h,
         head_dim=d // h, d_ff=int(_get(cfg, "intermediate_size", path)), vocab_size=int(_get(cfg, "vocab_size", path)),
-        norm_eps=float(_get(cfg, "layer_norm_eps", path, 1e-12)), tied_embeddings=False,
+        norm_eps=float(_get(cfg, "layer_norm_eps", path, 1e-12)), tied_embeddings=True,  # no output head at all
         max_positions=int(_get(cfg, "max_position_embeddings", path, 512)),
         type_vocab_size=int(_get(cfg, "type_vocab_size", path, 2)), qkv_bias=True, o_bias=True, mlp_bias=True,
         gated=False, activation=acts[act], norm="layer", pre_norm=False, causal=False)

@@ -143,3 +143,13 @@ def compress(path, keep, plan_file, strategy, texts, weights_only, damping, out,
     from .report import plan_text
     _emit(r, as_json, plan_text(r["plan"]) + f"\nwrote {r['out']} ({r['method']['factors']}) in "
           + ", ".join(f"{k} {v:.1f}s" for k, v in r["seconds"].items()))
+
+
+@main.command()
+@click.argument("path")
+@click.option("--out", required=True, type=click.Path(), help="Dense model directory to write.")
+@click.option("--force", is_flag=True, help="Replace --out if it exists.")
+def expand(path, out, force):
+    """Multiply a compressed directory's factors back into a dense model directory of the source layout."""
+    r = _run(api.expand, path, out, force)
+    click.echo(f"wrote {r['out']}: {r['tensors']} tensors, {r['parameters']:,} parameters")

@@ -6,6 +6,7 @@ new canonical weights); `compress` is the pipeline around it.
 from __future__ import annotations
 
 import hashlib
+import json
 import time
 from dataclasses import dataclass
 from pathlib import Path
@@ -13,6 +14,10 @@ from pathlib import Path
 import torch
 
 from . import analysis, factorize as fz, plan as planlib
+from .io.load import load_model, tokens
+from .models import resolve
+from .progress import Progress
+from .texts import read_texts, token_blocks
 from .analysis import Roots
 from .errors import CompressError
 from .shape import ModelShape
@@ -165,3 +170,136 @@ def check_plan_ranks(shape: ModelShape, plan: planlib.RankPlan, source: str) -> 
                                                            for gp in lr.qk_pairs):
                 raise CompressError(f"{source}: layer {lr.layer} qk_pairs must list {lr.qk} distinct pairs in "
                                     f"0..{shape.n_pairs - 1} for each of {shape.n_kv_heads} groups")
+
+
+# ------------------------------------------------------------------------------------------- the pipeline
+
+CALIB_CONTEXT = 128
+CALIB_BLOCKS = 256
+
+
+@dataclass
+class Analysed:
+    """A source model with its walk, weights, calibration statistics and spectra."""
+    loaded: object
+    weights: dict
+    stats: list | None
+    roots: list
+    spectra: list[dict]
+    calibration: dict | None
+    timer: object
+
+
+def _calibration_blocks(loaded, texts: list[str], context: int, n_blocks: int):
+    text, described = read_texts(texts)
+    ids = tokens(loaded, text)
+    blocks = token_blocks(ids, context, source=", ".join(str(t) for t in texts))
+    if blocks.shape[0] > n_blocks:
+        # evenly spaced blocks cover the whole text, not only its beginning
+        idx = torch.linspace(0, blocks.shape[0] - 1, n_blocks).round().long()
+        blocks = blocks[idx]
+    digest = hashlib.sha256(blocks.numpy().tobytes()).hexdigest()
+    return blocks, {"files": described, "context": context, "blocks": int(blocks.shape[0]),
+                    "tokens": int(blocks.numel()), "tokens_sha256": digest}
+
+
+def analyse(path: str, texts: list[str] | None = None, *, damping: float = 0.01, context: int = CALIB_CONTEXT,
+            n_blocks: int = CALIB_BLOCKS, quiet: bool = False, heads=None, kv_heads=None) -> Analysed:
+    """Load a source model, collect calibration statistics (when texts are given) and compute all spectra."""
+    timer = Timer()
+    loaded = load_model(resolve(path), heads, kv_heads)
+    if loaded.manifest is not None:
+        raise CompressError(f"{loaded.path}: already compressed; analyse and compress the source model instead")
+    weights = {n: p.detach() for n, p in _canonical_from_model(loaded)}
+    timer.lap("load")
+    stats = calib = None
+    if texts:
+        blocks, calib = _calibration_blocks(loaded, texts, min(context, loaded.shape.max_positions or context), n_blocks)
+        stats = analysis.collect_stats(loaded.model, blocks, quiet=quiet)
+        timer.lap("calibrate")
+    sh = loaded.shape
+    roots, spectra = [], []
+    with Progress(sh.n_layers, "spectra", unit="layer", quiet=quiet) as bar:
+        for i in range(sh.n_layers):
+            r = analysis.layer_roots(stats[i] if stats else None, damping, with_bias_row=not sh.rotary and sh.qkv_bias)
+            roots.append(r)
+            spectra.append(analysis.layer_spectra(sh, weights, i, r))
+            bar.update(1)
+    timer.lap("spectra")
+    return Analysed(loaded, weights, stats, roots, spectra, calib, timer)
+
+
+def _canonical_from_model(loaded):
+    """Canonical weights again from the walk (the runtime holds the same tensors)."""
+    from . import arch
+    return arch.canonical_weights(loaded.source, loaded.walk)
+
+
+def make_rank_plan(an: Analysed, keep: float | None, strategy: str, plan_file: str | None) -> "planlib.RankPlan":
+    sh = an.loaded.shape
+    if plan_file:
+        try:
+            text = Path(plan_file).read_text(encoding="utf-8")
+        except (OSError, UnicodeDecodeError) as e:
+            raise CompressError(f"{plan_file}: cannot read the plan ({e.__class__.__name__})") from None
+        p = planlib.RankPlan.from_json(text, source=plan_file)
+        check_plan_ranks(sh, p, plan_file)
+    else:
+        if keep is None:
+            raise CompressError("give --keep F (fraction of block-matrix parameters to keep) or --plan FILE")
+        if strategy not in planlib.STRATEGIES:
+            raise CompressError(f"--strategy {strategy!r} is unknown; expected one of {', '.join(planlib.STRATEGIES)}")
+        p = planlib.make_plan(spectra_list(sh, an.spectra), sh, keep, strategy)
+    return choose_pairs(sh, p, an.spectra)
+
+
+def compress(path: str, out: str, *, keep: float | None = None, plan_file: str | None = None,
+             strategy: str = "global", texts: list[str] | None = None, weights_only: bool = False,
+             damping: float = 0.01, force: bool = False, quiet: bool = False, context: int = CALIB_CONTEXT,
+             n_blocks: int = CALIB_BLOCKS) -> dict:
+    """Compress a source checkpoint into a directory our runtime (and `expand`) reads.
+
+    Raises:
+        CompressError: bad options, inputs or plan; the output exists without `force`.
+    """
+    from .io.write import atomic_dir, check_output, write_model_dir
+    check_output(out, force)
+    if not texts and not weights_only:
+        raise CompressError("give calibration text with --text FILE, or pass --weights-only for plain SVD")
+    if texts and weights_only:
+        raise CompressError("--text and --weights-only exclude each other")
+    an = analyse(path, texts, damping=damping, quiet=quiet, context=context, n_blocks=n_blocks)
+    sh = an.loaded.shape
+    p = make_rank_plan(an, keep, strategy, plan_file)
+    new: dict[str, torch.Tensor] = {n: t for n, t in an.weights.items() if not n.startswith("layers.")}
+    with Progress(sh.n_layers, "factorise", unit="layer", quiet=quiet) as bar:
+        for i in range(sh.n_layers):
+            new.update(factorize_layer(sh, an.weights, i, p.ranks(i), an.roots[i]))
+            bar.update(1)
+    an.timer.lap("factorise")
+    src = an.loaded.source
+    manifest = {
+        "format_version": FORMAT_VERSION, "tool": "attncompress", "tool_version": _version(),
+        "source": {"path": Path(str(src.path)).name, "format": src.format,
+                   "files": [{"name": f.name, "bytes": f.stat().st_size, "sha256": sha256_file(f)} for f in src.files]},
+        "family": sh.family, "model_type": (src.config or {}).get("model_type"),
+        "shape": json.loads(sh.to_json()), "plan": json.loads(p.to_json()),
+        "method": {"factors": "whitened" if texts else "svd", "damping": damping if texts else None,
+                   "spectral_split": "sqrt(S) on both factors"},
+        "calibration": an.calibration,
+    }
+    with atomic_dir(out, force) as tmp:
+        write_model_dir(tmp, new, manifest, an.loaded.tokenizer, src.config)
+    an.timer.lap("write")
+    summary = planlib.summary(sh, p)
+    return {"out": str(out), "source": str(src.path), "method": manifest["method"], "plan": summary,
+            "seconds": an.timer.stages}
+
+
+def _version() -> str:
+    try:
+        import importlib.metadata
+        return importlib.metadata.version("attncompress")
+    except Exception:
+        return "0+unknown"
+

@@ -32,8 +32,9 @@ def builtin(name: str) -> Path:
     return path
 
 
-def resolve(path_or_name: str) -> Path:
+def resolve(path_or_name) -> Path:
     """A path as given, or a built-in model's path when the argument is `builtin:NAME`."""
+    path_or_name = str(path_or_name)
     if path_or_name.startswith("builtin:"):
         return builtin(path_or_name.split(":", 1)[1])
     return Path(path_or_name)

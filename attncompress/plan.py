@@ -611,11 +611,11 @@ def _total_cost(spectra, units) -> int:
     return sum(_cost(s, k) for s, k in zip(spectra, units))
 
 
-def _too_small(keep: float, budget: int, dense: int, need: int, floor: str) -> CompressError:
+def _too_small(keep: float, budget: int, dense: int, need: int, floor: str, hint: str = "") -> CompressError:
     """The error for a budget below the smallest plan."""
-    least = math.ceil(need / dense * 1e4) / 1e4
+    least = math.ceil(need / dense * 1e4) / 1e4  # rounded up, so the suggested keep is enough
     return CompressError(f"--keep {keep}: the budget is {budget} of {dense} block-matrix parameters but the "
-                         f"smallest plan ({floor}) needs {need}; raise --keep to at least {least}")
+                         f"smallest plan ({floor}) needs {need}; raise --keep to at least {least}{hint}")
 
 
 def _plan_from_units(spectra, units, shape, strategy, keep, bytes_per_element) -> RankPlan:
@@ -789,7 +789,8 @@ def plan_global(spectra: Sequence[MatrixSpectrum], shape: ModelShape, keep: floa
     floor = f"every matrix at {min_units} unit(s)" if min_units is not None else \
         f"every matrix at {min_fraction:g} of its maximum units"
     if need > budget:
-        raise _too_small(keep, budget, dense, need, floor)
+        raise _too_small(keep, budget, dense, need, floor,
+                         " or lower min_units" if min_units is not None else " or lower min_fraction")
     remaining = budget - need
 
     # One heap of next moves: a whole hull edge while the matrix is in "edge" mode, then single steps (one
@@ -869,3 +870,15 @@ def make_plan(spectra: Sequence[MatrixSpectrum], shape: ModelShape, keep: float,
         if name not in names:
             raise CompressError(f"strategy {strategy!r} has no option {name!r}; its options are {', '.join(names)}")
     return fn(spectra, shape, keep, **opts)
+
+
+def summary(shape: ModelShape, p: RankPlan) -> dict:
+    """Plain-dict overview of a plan for reports: counts, fractions, KV bytes and the ranks per layer."""
+    pc = count_params(shape, p)
+    return {"strategy": p.strategy, "keep": p.keep, "block_params_kept": pc.block_kept,
+            "block_params_dense": pc.block_dense, "kept_fraction": pc.block_kept / pc.block_dense,
+            "kv_bytes_per_token": kv_cache_bytes(shape, p.layers, p.bytes_per_element),
+            "kv_bytes_per_token_dense": kv_cache_bytes(shape, full_plan(shape).layers,
+                                                               p.bytes_per_element),
+            "layers": [{"layer": lr.layer, "qk": lr.qk, "vo": lr.vo, **{k: v for k, v in lr.ff.items()}}
+                       for lr in p.layers]}

@@ -22,7 +22,7 @@ class ModelShape:
     vocab_size: int
     rope_theta: float | None = None  # None: no rotary embeddings
     norm_eps: float = 1e-5
-    tied_embeddings: bool = True  # output projection reuses the token embedding
+    tied_embeddings: bool = True  # no separate output matrix (reuses the token embedding; BERT has none)
     max_positions: int = 0  # rows of a learned position table (0: none)
     type_vocab_size: int = 0  # BERT token types (0: none)
     qkv_bias: bool = False  # query/key/value projections carry biases
@@ -82,5 +82,5 @@ TINY = {
     "bert": ModelShape(family="bert", n_layers=2, d_model=32, n_heads=4, n_kv_heads=4, head_dim=8, d_ff=64,
                        vocab_size=96, norm_eps=1e-12, max_positions=64, type_vocab_size=2, qkv_bias=True,
                        o_bias=True, mlp_bias=True, gated=False, activation="gelu", norm="layer", pre_norm=False,
-                       causal=False, tied_embeddings=False),
+                       causal=False, tied_embeddings=True),
 }

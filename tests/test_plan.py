@@ -238,6 +238,27 @@ def test_global_switches_ff_to_dense_when_the_budget_allows():
     assert plan.ranks(0).ff["up"] == 31
 
 
+def test_global_prefers_a_jump_to_dense_over_better_single_units():
+    # Layer 0 up (96 x 48) is flat: one unit wins 1/48 of its energy for 144 parameters (1.45e-4 per parameter),
+    # but the jump from its start (6 units) to dense wins 42/48 for 4608 - 864 = 3744 (2.34e-4 per parameter).
+    # Layer 0 down wins 1/32 per 144-parameter unit (2.17e-4), between the two. With a budget of exactly that
+    # jump, the best use is the jump (energy 0.875), not 26 units of down (26/32 = 0.81).
+    shape = EVEN
+    spectra = []
+    for c in matrix_layout(shape):
+        if (c.layer, c.kind) == (0, "up"):
+            g = np.ones(c.max_units)
+        elif (c.layer, c.kind) == (0, "down"):
+            g = np.r_[np.ones(32), np.zeros(c.max_units - 32)]
+        else:
+            g = np.zeros(c.max_units)
+        spectra.append(c.with_gains(g))
+    start = sum(min(c.unit_params * max(1, math.ceil(c.max_units / 8)), c.dense_params)
+                for c in matrix_layout(shape))
+    plan = plan_global(spectra, shape, (start + 3744 + 0.5) / dense_block_params(shape))
+    assert plan.ranks(0).ff["up"] is None and plan.ranks(0).ff["down"] == 6
+
+
 # ------------------------------------------------------------------------------------------- budgets
 
 @pytest.fixture(scope="module")
@@ -367,7 +388,8 @@ def test_make_plan_rejects_an_unreachable_budget():
     assert need == 1728
     assert str(e.value) == ("--keep 0.05: the budget is 921 of 18432 block-matrix parameters but the smallest "
                             "plan (every matrix at 1 unit(s)) needs 1728; raise --keep to at least 0.0938")
-    with pytest.raises(CompressError, match=r"^--keep 0.05: .*\(every matrix at 0.125 of its maximum units\)"):
+    with pytest.raises(CompressError, match=r"^--keep 0.05: .*\(every matrix at 0.125 of its maximum units\) "
+                                            r"needs \d+; raise --keep to at least [\d.]+ or lower min_fraction$"):
         make_plan(decaying_spectra(shape), shape, 0.05, "global")
 
 

@@ -70,3 +70,10 @@ def load_model(path: str | Path, heads: int | None = None, kv_heads: int | None 
     model = build(shape, weights)
     model.eval()
     return Loaded(model, shape, source.tokenizer(), source, w, manifest)
+
+
+def tokens(loaded, text: str) -> list[int]:
+    """Token ids of a text with the model's own tokenizer."""
+    if loaded.tokenizer is None:
+        raise CompressError(f"{loaded.path}: no tokenizer found; expected tokenizer.json beside the weights or GGUF metadata")
+    return loaded.tokenizer.encode(text).ids
