@@ -32,6 +32,8 @@ class LayerStats:
     ff_gram: torch.Tensor  # (d, d) feed-forward input
     down_gram: torch.Tensor  # (f, f) input of the down (out) matrix
     tokens: int
+    up_sens: torch.Tensor | None = None  # (f,) Σ (∂ down-input / ∂ up-output)² per channel
+    gate_sens: torch.Tensor | None = None  # (f,) the same for the gate output (gated feed-forward only)
 
 
 @torch.no_grad()
@@ -61,6 +63,7 @@ def collect_stats(model: Transformer, blocks: torch.Tensor, batch: int = 8, quie
         handles.append(blk.attn.register_forward_pre_hook(add(i, "attn_gram")))
         handles.append(blk.ff.register_forward_pre_hook(add(i, "ff_gram")))
         handles.append(blk.ff.down.register_forward_pre_hook(add(i, "down_gram")))
+        handles += sensitivity_hooks(blk.ff, stats[i], sh)
     try:
         with Progress(blocks.shape[0] * blocks.shape[1], "calibration", unit="tok", quiet=quiet) as bar:
             for j in range(0, blocks.shape[0], batch):
@@ -72,6 +75,58 @@ def collect_stats(model: Transformer, blocks: torch.Tensor, batch: int = 8, quie
     return stats
 
 
+def sensitivity_hooks(ff, st: LayerStats, shape: ModelShape) -> list:
+    """Hooks that accumulate how strongly an error in each gate/up output channel reaches the down input.
+
+    Gated: down input h = act(g) ⊙ u, so ∂h/∂u = act(g) and ∂h/∂g = act'(g) ⊙ u. Plain: h = act(u),
+    ∂h/∂u = act'(u). The squares summed over tokens weight each output channel of gate/up when
+    factorising them (`output_weights`). Returns the hook handles.
+    """
+    seen: dict[str, torch.Tensor] = {}
+    act = {"silu": torch.nn.functional.silu, "gelu": torch.nn.functional.gelu,
+           "gelu_tanh": lambda z: torch.nn.functional.gelu(z, approximate="tanh")}[shape.activation]
+
+    def keep(name):
+        def hook(_m, _args, out):
+            seen[name] = out.detach()
+        return hook
+
+    def derivative(z):
+        with torch.enable_grad():  # act' by autograd, exact for every activation we support
+            z = z.detach().requires_grad_(True)
+            (g,) = torch.autograd.grad(act(z).sum(), z)
+        return g
+
+    def accumulate(_m, _args):
+        f = shape.d_ff
+        if shape.gated:
+            g, u = seen.pop("gate"), seen.pop("up")
+            up = act(g).pow(2)
+            gate = (derivative(g) * u).pow(2)
+            st.gate_sens = (st.gate_sens if st.gate_sens is not None else 0) + gate.reshape(-1, f).sum(0).double()
+        else:
+            up = derivative(seen.pop("up")).pow(2)
+        st.up_sens = (st.up_sens if st.up_sens is not None else 0) + up.reshape(-1, f).sum(0).double()
+
+    hs = [ff.up.register_forward_hook(keep("up")), ff.down.register_forward_pre_hook(accumulate)]
+    if shape.gated:
+        hs.append(ff.gate.register_forward_hook(keep("gate")))
+    return hs
+
+
+def output_weights(sens: torch.Tensor, down: torch.Tensor) -> torch.Tensor:
+    """Per-channel output weights (f,) for gate/up: sqrt(sensitivity · ‖column of down‖²), mean square 1.
+
+    An error e_j in channel j of the up (or gate) output moves the block output by about
+    sens_j^½ · e_j · down[:, j]; weighting the channels so (a diagonal first-order model of what follows,
+    cross-channel terms ignored) makes the truncation minimise the error that reaches the residual stream.
+    Example: sens [1, 4], down columns of norm [1, 1] → weights [0.632, 1.265].
+    """
+    s = sens.double() * down.double().pow(2).sum(0)  # (f,)
+    s = s / s.mean().clamp_min(1e-300)
+    return s.clamp_min(1e-12).sqrt()  # a dead channel keeps a tiny weight so the map stays invertible
+
+
 @dataclass
 class Roots:
     """Whitening factors of one layer's inputs (G_damped = L Lᵀ), or None for weight-only spectra."""
@@ -79,17 +134,33 @@ class Roots:
     attn_aug: tuple[torch.Tensor, torch.Tensor] | None  # for [x; 1], (d+1, d+1); non-rotary query side
     ff: tuple[torch.Tensor, torch.Tensor] | None
     down: tuple[torch.Tensor, torch.Tensor] | None
+    up_out: torch.Tensor | None = None  # (f,) output-channel weights of the up matrix (`output_weights`)
+    gate_out: torch.Tensor | None = None  # (f,) the same for gate
 
 
-def layer_roots(stats: LayerStats | None, damping: float, with_bias_row: bool = False) -> Roots:
-    """Damped Cholesky roots of one layer's Gram matrices (see `factorize.gram_root` for the damping)."""
+def layer_roots(stats: LayerStats | None, damping: float, with_bias_row: bool = False,
+                down: torch.Tensor | None = None) -> Roots:
+    """Damped Cholesky roots of one layer's Gram matrices (see `factorize.gram_root` for the damping).
+
+    With `down` (the layer's down weight (d, f)) and the stats' sensitivities, also the output weights of
+    gate and up.
+    """
     if stats is None:
         return Roots(None, None, None, None)
     aug = None
     if with_bias_row:
         aug = fz.gram_root(fz.augmented_gram(stats.attn_gram, stats.attn_sum, stats.tokens), damping)
+    up_out = gate_out = None
+    if down is not None and stats.up_sens is not None:
+        up_out = output_weights(stats.up_sens, down)
+        gate_out = output_weights(stats.gate_sens, down) if stats.gate_sens is not None else None
     return Roots(fz.gram_root(stats.attn_gram, damping), aug, fz.gram_root(stats.ff_gram, damping),
-                 fz.gram_root(stats.down_gram, damping))
+                 fz.gram_root(stats.down_gram, damping), up_out, gate_out)
+
+
+def ff_target(w: torch.Tensor, out_w: torch.Tensor | None) -> torch.Tensor:
+    """The matrix whose truncation is optimal for the weighted objective: diag(out_w) W, or W."""
+    return w.double() if out_w is None else out_w[:, None] * w.double()
 
 
 def head_slices(w: torch.Tensor, n: int) -> list[torch.Tensor]:
@@ -151,7 +222,8 @@ def layer_spectra(shape: ModelShape, w: dict[str, torch.Tensor], layer: int, roo
     out["vo"] = {"values": vals, "gains": vals.pow(2).sum(0)}
     for kind in (("gate", "up", "down") if shape.gated else ("up", "down")):
         root = roots.down if kind == "down" else roots.ff
-        s = fz.singular_values(w[p + f"ff.{kind}.weight"], None if root is None else root[0])
+        target = ff_target(w[p + f"ff.{kind}.weight"], getattr(roots, f"{kind}_out", None))
+        s = fz.singular_values(target, None if root is None else root[0])
         out[kind] = {"values": s[None], "gains": s.pow(2)}
     return out
 

@@ -17,7 +17,7 @@ def _run(fn, *args, **kwargs):
     except CompressError as e:
         raise click.ClickException(str(e)) from None
     except KeyboardInterrupt:
-        click.echo("interrupted; nothing was left half-written", err=True)
+        click.echo("Error: interrupted; nothing was left half-written", err=True)
         sys.exit(130)
 
 
@@ -129,8 +129,10 @@ def plan(path, keep, strategy, texts, damping, out, as_json):
 @click.option("--force", is_flag=True, help="Replace --out if it exists.")
 @click.option("--calib-blocks", default=256, show_default=True, help="Calibration passages to use at most.")
 @click.option("--calib-context", default=128, show_default=True, help="Tokens per calibration passage.")
+@click.option("--shard-size", default="2GB", show_default=True,
+              help="Largest safetensors file to write; a bigger model is split into shards with an index.")
 @click.option("--json", "as_json", is_flag=True, help="Print the report as JSON.")
-def compress(path, keep, plan_file, strategy, texts, weights_only, damping, out, force, calib_blocks, calib_context,
+def compress(path, keep, plan_file, strategy, texts, weights_only, damping, out, force, calib_blocks, calib_context, shard_size,
              as_json):
     """Cut ranks under a budget and write a smaller checkpoint."""
     if weights_only:
@@ -139,7 +141,8 @@ def compress(path, keep, plan_file, strategy, texts, weights_only, damping, out,
     if keep is not None and plan_file:
         raise click.UsageError("give --keep or --plan, not both")
     r = _run(api.compress, path, out, keep=keep, plan_file=plan_file, strategy=strategy, texts=list(texts) or None,
-             weights_only=weights_only, damping=damping, force=force, n_blocks=calib_blocks, context=calib_context)
+             weights_only=weights_only, damping=damping, force=force, n_blocks=calib_blocks, context=calib_context,
+             shard_size=shard_size)
     from .report import plan_text
     _emit(r, as_json, plan_text(r["plan"]) + f"\nwrote {r['out']} ({r['method']['factors']}) in "
           + ", ".join(f"{k} {v:.1f}s" for k, v in r["seconds"].items()))
@@ -153,3 +156,91 @@ def expand(path, out, force):
     """Multiply a compressed directory's factors back into a dense model directory of the source layout."""
     r = _run(api.expand, path, out, force)
     click.echo(f"wrote {r['out']}: {r['tensors']} tensors, {r['parameters']:,} parameters")
+
+
+@main.command()
+@click.argument("path")
+@click.option("--text", "texts", multiple=True, required=True, type=click.Path(), help="Training text file (repeatable).")
+@click.option("--out", required=True, type=click.Path(), help="Tuned directory to write.")
+@click.option("--steps", default=100, show_default=True, help="Optimiser steps.")
+@click.option("--batch", default=4, show_default=True, help="Blocks per step, over all processes.")
+@click.option("--context", default=128, show_default=True, help="Tokens per block.")
+@click.option("--lr", default=1e-4, show_default=True, help="Peak learning rate (warm-up, then cosine).")
+@click.option("--seed", default=0, show_default=True, help="Seed of the data order.")
+@click.option("--decay", type=click.Choice(["frobenius", "factor", "none"]), default="factor", show_default=True,
+              help="frobenius: λ·Σ‖A Bᵀ‖² over the factor pairs (mind its scale: see the README); factor: AdamW "
+                   "weight decay on the factors.")
+@click.option("--decay-coef", default=0.01, show_default=True, help="λ of --decay.")
+@click.option("--penalty-every", default=4, show_default=True,
+              help="Evaluate the Frobenius penalty every N steps, weighted N·λ (lazy regularisation).")
+@click.option("--teacher", help="Distil from this model, or 'none'. [default: the source model in the manifest]")
+@click.option("--temperature", default=1.0, show_default=True, help="Distillation temperature T.")
+@click.option("--mix", default=0.5, show_default=True,
+              help="Weight of the next-token loss; 1 − mix goes to T²·KL(teacher ‖ student).")
+@click.option("--topk", default=64, show_default=True, help="Teacher tokens cached per position for the KL.")
+@click.option("--eval-text", "eval_texts", multiple=True, type=click.Path(),
+              help="Held-out text file (repeatable): perplexity before and after.")
+@click.option("--eval-tokens", type=int, help="Score at most N tokens of each --eval-text.")
+@click.option("--save-every", default=100, show_default=True, help="Checkpoint every N steps (0: never).")
+@click.option("--resume", is_flag=True, help="Continue from the checkpoint of an interrupted run.")
+@click.option("--train-norms", is_flag=True, help="Also train the norm weights.")
+@click.option("--train-dense", is_flag=True, help="Also train the feed-forward matrices the plan left dense.")
+@click.option("--force", is_flag=True, help="Replace --out, and a stale checkpoint, if they exist.")
+@click.option("--quiet", is_flag=True, help="No progress line.")
+@click.option("--json", "as_json", is_flag=True, help="Print the report as JSON.")
+def tune(path, texts, out, steps, batch, context, lr, seed, decay, decay_coef, penalty_every, teacher, temperature,
+         mix, topk, eval_texts, eval_tokens, save_every, resume, train_norms, train_dense, force, quiet, as_json):
+    """Fine-tune a compressed directory's factors on text (distilling from the source model); also under torchrun."""
+    import os
+    from . import tune as tunelib
+
+    def go():
+        try:
+            return tunelib.tune(path, list(texts), out, steps=steps, batch=batch, context=context, lr=lr, seed=seed,
+                                decay=decay, decay_coef=decay_coef, penalty_every=penalty_every,
+                                temperature=temperature, mix=mix, teacher=teacher, topk=topk,
+                                eval_texts=list(eval_texts), eval_tokens=eval_tokens, save_every=save_every,
+                                resume=resume, train_norms=train_norms, train_dense=train_dense, force=force,
+                                quiet=quiet)
+        except tunelib.TuneInterrupted as e:
+            click.echo(str(e), err=True)
+            sys.exit(130)
+    r = _run(go)
+    if r["processes"] > 1 and int(os.environ.get("RANK", "0")) != 0:
+        return
+    c = r["curve"]
+    lines = [f"tuned steps {r['start_step'] + 1}-{r['steps']} in {r['seconds']['train']:.1f}s "
+             f"({r['tokens_per_second'] or 0:.0f} tok/s): loss {c[0]['loss']:.4f} -> {c[-1]['loss']:.4f}"
+             if c and r["steps"] > r["start_step"] else "nothing left to train"]
+    before, after = r["eval"]["before"] or {}, r["eval"]["after"] or {}
+    for name in after:
+        lines.append(f"held-out {name}: perplexity {before[name]['perplexity']:.3f} -> {after[name]['perplexity']:.3f}")
+    lines.append(f"wrote {r['out']}")
+    _emit(r, as_json, "\n".join(lines))
+
+
+@main.command()
+@click.argument("a")
+@click.argument("b")
+@click.option("--text", "texts", multiple=True, type=click.Path(),
+              help="Text file (repeatable): perplexity of decoders; for encoders one sentence per line.")
+@click.option("--context", default=512, show_default=True, help="Tokens per perplexity window.")
+@click.option("--stride", type=int, help="Perplexity window step. [default: --context]")
+@click.option("--max-tokens", type=int, help="Score only the first N tokens of the text.")
+@click.option("--runs", default=5, show_default=True, help="Timed runs per speed figure (median); 0 skips speed.")
+@click.option("--threads", type=int, help="Threads for the speed measurement. [default: torch's]")
+@click.option("--json", "as_json", is_flag=True, help="Print the report as JSON (schema attncompress.compare/1).")
+@click.option("--out", type=click.Path(), help="Write compare.json, report.md and PNG plots to this directory.")
+@click.option("--force", is_flag=True, help="Replace --out if it exists.")
+@click.option("--quiet", is_flag=True, help="No progress lines.")
+def compare(a, b, texts, context, stride, max_tokens, runs, threads, as_json, out, force, quiet):
+    """Model A against model B: size, KV cache, perplexity or embedding agreement, and speed side by side."""
+    from . import compare as comparelib
+    from .report import compare_text, write_compare
+    if out:
+        from .io.write import check_output
+        _run(check_output, out, force)  # refuse before the slow part
+    r = _run(comparelib.compare, a, b, list(texts) or None, context=context, stride=stride, max_tokens=max_tokens,
+             speed_runs=runs, threads=threads, quiet=quiet)
+    note = _run(write_compare, r, out, force) if out else None
+    _emit(r, as_json, compare_text(r) + (f"\nwrote {out}/report.md and {out}/compare.json; {note}" if out else ""))

@@ -5,16 +5,21 @@ new canonical weights); `compress` is the pipeline around it.
 """
 from __future__ import annotations
 
+import ctypes
 import hashlib
 import json
+import shutil
 import time
 from dataclasses import dataclass
 from pathlib import Path
 
 import torch
 
-from . import analysis, factorize as fz, plan as planlib
-from .io.load import load_model, tokens
+from . import analysis, arch, factorize as fz, plan as planlib
+from .io.load import Loaded, is_compressed, tokens
+from .io.read import open_source
+from .io.write import DEFAULT_SHARD_SIZE
+from .model import build, build_block
 from .models import resolve
 from .progress import Progress
 from .texts import read_texts, token_blocks
@@ -108,10 +113,15 @@ def factorize_layer(shape: ModelShape, w: dict[str, torch.Tensor], layer: int, r
             out[name + ".weight"] = w[name + ".weight"]
             continue
         root = roots.down if kind == "down" else roots.ff
+        out_w = getattr(roots, f"{kind}_out", None)
         if root is None:
             a, b = fz.spectral_factors(w[name + ".weight"], rank)
-        else:
+        elif out_w is None:
             a, b = fz.whitened_factors(w[name + ".weight"], rank, root[0], root[1])
+        else:
+            # minimise ‖diag(out_w) (W − A Bᵀ) L‖: whitened on the input, weighted on the output side
+            a, b = fz.bilinear_factors(w[name + ".weight"], rank, torch.diag(out_w), torch.diag(1 / out_w),
+                                       root[0], root[1])
         out[name + ".a"], out[name + ".b"] = a.float().contiguous(), b.float().contiguous()
     return out
 
@@ -150,15 +160,19 @@ def sha256_file(path: Path, chunk: int = 1 << 22) -> str:
 
 @dataclass
 class Timer:
-    """Wall time per stage, for the report."""
+    """Wall time per stage, for the report; a stage met again (once per layer) adds up."""
     def __post_init__(self):
-        self.stages: dict[str, float] = {}
+        self._sums: dict[str, float] = {}
         self._t = time.perf_counter()
 
     def lap(self, name: str) -> None:
         now = time.perf_counter()
-        self.stages[name] = round(now - self._t, 3)
+        self._sums[name] = self._sums.get(name, 0.0) + now - self._t
         self._t = now
+
+    @property
+    def stages(self) -> dict[str, float]:
+        return {k: round(v, 3) for k, v in self._sums.items()}
 
 
 def check_plan_ranks(shape: ModelShape, plan: planlib.RankPlan, source: str) -> None:
@@ -173,27 +187,63 @@ def check_plan_ranks(shape: ModelShape, plan: planlib.RankPlan, source: str) -> 
 
 
 # ------------------------------------------------------------------------------------------- the pipeline
+#
+# Two passes over the layers, each holding one layer's weights at a time (read again from the checkpoint
+# files), so memory is bounded by the largest layer plus the calibration state, never by the model:
+#   1. analyse: the calibration hidden states (n_blocks, context, d) of all blocks go through layer i with
+#      hooks for its input Gram matrices, which whiten its spectra and are saved to a scratch directory;
+#      the outputs are layer i + 1's inputs. Only the spectra stay in memory.
+#   2. plan (needs every spectrum), then factorise each layer with its saved Gram matrices and stream the
+#      result into safetensors shards.
+# The calibration runs CALIB_BATCH blocks per forward pass, the same batches through the same operations
+# as running the whole model, so the numbers (and the bytes written) are those of the one-shot computation.
 
 CALIB_CONTEXT = 128
 CALIB_BLOCKS = 256
+CALIB_BATCH = 8  # calibration blocks per forward pass
 
 
 @dataclass
 class Analysed:
-    """A source model with its walk, weights, calibration statistics and spectra."""
-    loaded: object
-    weights: dict
-    stats: list | None
-    roots: list
+    """A source model's walk, calibration description and the spectra of every layer; no weights.
+
+    `loaded.model` is None: the layers were run one at a time. `scratch`, when set, holds each layer's
+    calibration Gram matrices (`layer-{i}.safetensors`) for the factorise pass.
+    """
+    loaded: Loaded
     spectra: list[dict]
     calibration: dict | None
-    timer: object
+    timer: Timer
+    damping: float = DEFAULT_DAMPING
+    scratch: Path | None = None
 
 
-def _calibration_blocks(loaded, texts: list[str], context: int, n_blocks: int):
+def open_model(path, heads: int | None = None, kv_heads: int | None = None) -> Loaded:
+    """Open and walk a source checkpoint without reading its tensors (`Loaded.model` is None).
+
+    Raises:
+        CompressError: unreadable or corrupt files, unknown family, shapes that disagree with the config,
+            or a directory this tool wrote (compress its source instead).
+    """
+    source = open_source(resolve(path))
+    if is_compressed(source.path):
+        raise CompressError(f"{source.path}: already compressed; analyse and compress the source model instead")
+    w = arch.walk(source, heads, kv_heads)
+    return Loaded(None, w.shape, source.tokenizer(), source, w, None)
+
+
+def layer_weights(loaded: Loaded, layer: int) -> dict[str, torch.Tensor]:
+    """The canonical float32 tensors of one layer, read from the checkpoint now."""
+    p = f"layers.{layer}."
+    return {n: arch.load_tensor(loaded.source, ref) for n, ref in loaded.walk.refs.items() if n.startswith(p)}
+
+
+def _calibration_blocks(loaded, texts: list[str], context: int, n_blocks: int, option: str = "--calib-context"):
+    """Token blocks (n_blocks, context) of the calibration texts, and their description for the manifest."""
+    context = min(context, loaded.shape.max_positions or context)  # a learned position table caps the context
     text, described = read_texts(texts)
     ids = tokens(loaded, text)
-    blocks = token_blocks(ids, context, source=", ".join(str(t) for t in texts))
+    blocks = token_blocks(ids, context, source=", ".join(str(t) for t in texts), option=option)
     if blocks.shape[0] > n_blocks:
         # evenly spaced blocks cover the whole text, not only its beginning
         idx = torch.linspace(0, blocks.shape[0] - 1, n_blocks).round().long()
@@ -203,97 +253,245 @@ def _calibration_blocks(loaded, texts: list[str], context: int, n_blocks: int):
                     "tokens": int(blocks.numel()), "tokens_sha256": digest}
 
 
-def analyse(path: str, texts: list[str] | None = None, *, damping: float = 0.01, context: int = CALIB_CONTEXT,
-            n_blocks: int = CALIB_BLOCKS, quiet: bool = False, heads=None, kv_heads=None) -> Analysed:
-    """Load a source model, collect calibration statistics (when texts are given) and compute all spectra."""
-    timer = Timer()
-    loaded = load_model(resolve(path), heads, kv_heads)
-    if loaded.manifest is not None:
-        raise CompressError(f"{loaded.path}: already compressed; analyse and compress the source model instead")
-    weights = {n: p.detach() for n, p in _canonical_from_model(loaded)}
-    timer.lap("load")
-    stats = calib = None
-    if texts:
-        blocks, calib = _calibration_blocks(loaded, texts, min(context, loaded.shape.max_positions or context), n_blocks)
-        stats = analysis.collect_stats(loaded.model, blocks, quiet=quiet)
-        timer.lap("calibrate")
+@torch.no_grad()
+def _embed(loaded: Loaded, blocks: torch.Tensor) -> torch.Tensor:
+    """The first block's input for every calibration block: (n_blocks, s, d) float32."""
     sh = loaded.shape
-    roots, spectra = [], []
-    with Progress(sh.n_layers, "spectra", unit="layer", quiet=quiet) as bar:
+    w = {n: arch.load_tensor(loaded.source, ref) for n, ref in loaded.walk.refs.items() if n.startswith("embed.")}
+    emb = build(sh, w, blocks=False)  # token (and position, type) embedding, embedding norm; no blocks
+    xs = torch.empty(blocks.shape[0], blocks.shape[1], sh.d_model)  # (n_blocks, s, d)
+    for j in range(0, blocks.shape[0], CALIB_BATCH):
+        xs[j:j + CALIB_BATCH] = emb.hidden(blocks[j:j + CALIB_BATCH])
+    return xs
+
+
+@torch.no_grad()
+def _run_block(shape: ModelShape, w: dict[str, torch.Tensor], layer: int, xs: torch.Tensor) -> analysis.LayerStats:
+    """Run block `layer` over the hidden states xs (n_blocks, s, d), in place, and return its input Gram matrices.
+
+    The hooks accumulate as `analysis.collect_stats` does for the whole model: a float32 product per batch,
+    summed in float64.
+    """
+    d, f = shape.d_model, shape.d_ff
+    st = analysis.LayerStats(torch.zeros(d, d, dtype=torch.float64), torch.zeros(d, dtype=torch.float64),
+                             torch.zeros(d, d, dtype=torch.float64), torch.zeros(f, f, dtype=torch.float64), 0)
+
+    def add(field):
+        def hook(_module, args):
+            x = args[0].reshape(-1, args[0].shape[-1])  # (n, d) or (n, f)
+            g = getattr(st, field)
+            g += (x.T @ x).double()
+            if field == "attn_gram":
+                st.attn_sum += x.sum(0).double()
+                st.tokens += x.shape[0]
+        return hook
+
+    blk = build_block(shape, w, layer)
+    handles = [blk.attn.register_forward_pre_hook(add("attn_gram")), blk.ff.register_forward_pre_hook(add("ff_gram")),
+               blk.ff.down.register_forward_pre_hook(add("down_gram"))]
+    try:
+        for j in range(0, xs.shape[0], CALIB_BATCH):
+            # the block's output replaces its input: the next layer's input, and all the state carried over
+            xs[j:j + CALIB_BATCH] = blk(xs[j:j + CALIB_BATCH], mask=None, cache=None, layer=layer, start=0)
+    finally:
+        for h in handles:
+            h.remove()
+    return st
+
+
+def _save_stats(scratch: Path, layer: int, st: analysis.LayerStats) -> None:
+    """Put one layer's Gram matrices on disk (float64, exact) until the factorise pass needs them."""
+    from safetensors.torch import save_file
+    save_file({"attn_gram": st.attn_gram, "attn_sum": st.attn_sum, "ff_gram": st.ff_gram, "down_gram": st.down_gram,
+               "tokens": torch.tensor(st.tokens)}, str(scratch / f"layer-{layer}.safetensors"))
+
+
+def _load_stats(scratch: Path, layer: int) -> analysis.LayerStats:
+    """One layer's Gram matrices as `_save_stats` left them."""
+    from safetensors.torch import load_file
+    t = load_file(str(scratch / f"layer-{layer}.safetensors"))
+    return analysis.LayerStats(t["attn_gram"], t["attn_sum"], t["ff_gram"], t["down_gram"], int(t["tokens"]))
+
+
+def _release_large_frees() -> None:
+    """Have glibc give every allocation of 1 MiB or more its own mapping, returned to the system when freed.
+
+    By default glibc raises that threshold each time a large block is freed; after that, layer-sized tensors
+    come from the main heap, and the small tensors kept from layer to layer (the spectra) pin it, so the heap
+    grows by about a layer per layer though nothing stays alive (measured on a 668-layer model: 5 MB more per
+    layer, 4 GB resident after 600 layers, against a flat 0.3 GB with this setting). Elsewhere than glibc,
+    nothing happens.
+    """
+    try:
+        ctypes.CDLL(None).mallopt(-3, 1 << 20)  # -3 is M_MMAP_THRESHOLD in glibc's <malloc.h>
+    except (OSError, AttributeError):
+        pass
+
+
+def _first_pass(loaded: Loaded, calib, damping: float, scratch: Path | None, quiet: bool, timer: Timer) -> Analysed:
+    """Spectra of every layer, one layer in memory at a time (see the pipeline note above)."""
+    _release_large_frees()
+    sh = loaded.shape
+    xs = description = None
+    if calib is not None:
+        blocks, description = calib
+        xs = _embed(loaded, blocks)  # (n_blocks, s, d)
+        timer.lap("calibrate")
+        if scratch is not None:
+            scratch.mkdir()
+    spectra = []
+    with Progress(sh.n_layers, "analyse", unit="layer", quiet=quiet) as bar:
         for i in range(sh.n_layers):
-            r = analysis.layer_roots(stats[i] if stats else None, damping, with_bias_row=not sh.rotary and sh.qkv_bias)
-            roots.append(r)
-            spectra.append(analysis.layer_spectra(sh, weights, i, r))
+            w = layer_weights(loaded, i)
+            timer.lap("load")
+            st = None
+            if xs is not None:
+                st = _run_block(sh, w, i, xs)
+                if scratch is not None:
+                    _save_stats(scratch, i, st)
+                timer.lap("calibrate")
+            roots = analysis.layer_roots(st, damping, with_bias_row=not sh.rotary and sh.qkv_bias)
+            spectra.append(analysis.layer_spectra(sh, w, i, roots))
+            del w, st, roots  # nothing of this layer but its spectra is kept
+            timer.lap("spectra")
             bar.update(1)
-    timer.lap("spectra")
-    return Analysed(loaded, weights, stats, roots, spectra, calib, timer)
+    return Analysed(loaded, spectra, description, timer, damping, scratch if xs is not None else None)
 
 
-def _canonical_from_model(loaded):
-    """Canonical weights again from the walk (the runtime holds the same tensors)."""
-    from . import arch
-    return arch.canonical_weights(loaded.source, loaded.walk)
+def analyse(path: str, texts: list[str] | None = None, *, damping: float = DEFAULT_DAMPING,
+            context: int = CALIB_CONTEXT, n_blocks: int = CALIB_BLOCKS, quiet: bool = False, heads=None,
+            kv_heads=None, context_option: str = "--calib-context") -> Analysed:
+    """Open a source model and compute all spectra (whitened by calibration statistics when texts are given).
+
+    One layer's weights are in memory at a time; see the pipeline note above.
+
+    Raises:
+        CompressError: unreadable, corrupt or unsupported checkpoints; bad text files; non-finite weights.
+    """
+    timer = Timer()
+    loaded = open_model(path, heads, kv_heads)
+    calib = _calibration_blocks(loaded, texts, context, n_blocks, context_option) if texts else None
+    timer.lap("load")
+    return _first_pass(loaded, calib, damping, None, quiet, timer)
 
 
-def make_rank_plan(an: Analysed, keep: float | None, strategy: str, plan_file: str | None) -> "planlib.RankPlan":
+def read_plan_file(plan_file: str, shape: ModelShape) -> planlib.RankPlan:
+    """A plan JSON written by `attncompress plan --out` (maybe edited), checked against the model.
+
+    Raises:
+        CompressError: unreadable, not a plan, of another model, or ranks out of range.
+    """
+    try:
+        text = Path(plan_file).read_text(encoding="utf-8")
+    except (OSError, UnicodeDecodeError) as e:
+        reason = "not UTF-8 text" if isinstance(e, UnicodeDecodeError) else (e.strerror or e.__class__.__name__)
+        raise CompressError(f"{plan_file}: cannot read the plan ({reason})") from None
+    p = planlib.RankPlan.from_json(text, source=plan_file)
+    check_plan_ranks(shape, p, plan_file)
+    return p
+
+
+def make_rank_plan(an: Analysed, keep: float | None, strategy: str, plan_file: str | None = None, *,
+                   plan: planlib.RankPlan | None = None) -> planlib.RankPlan:
+    """The plan to apply: `plan` or `plan_file` as given, else one made under `keep`; rotary pairs chosen."""
     sh = an.loaded.shape
-    if plan_file:
-        try:
-            text = Path(plan_file).read_text(encoding="utf-8")
-        except (OSError, UnicodeDecodeError) as e:
-            raise CompressError(f"{plan_file}: cannot read the plan ({e.__class__.__name__})") from None
-        p = planlib.RankPlan.from_json(text, source=plan_file)
-        check_plan_ranks(sh, p, plan_file)
-    else:
-        if keep is None:
-            raise CompressError("give --keep F (fraction of block-matrix parameters to keep) or --plan FILE")
-        if strategy not in planlib.STRATEGIES:
-            raise CompressError(f"--strategy {strategy!r} is unknown; expected one of {', '.join(planlib.STRATEGIES)}")
-        p = planlib.make_plan(spectra_list(sh, an.spectra), sh, keep, strategy)
-    return choose_pairs(sh, p, an.spectra)
+    if plan is None and plan_file:
+        plan = read_plan_file(plan_file, sh)
+    if plan is None:
+        _check_budget(keep, strategy)
+        plan = planlib.make_plan(spectra_list(sh, an.spectra), sh, keep, strategy)
+    return choose_pairs(sh, plan, an.spectra)
+
+
+def _check_budget(keep: float | None, strategy: str) -> None:
+    """--keep and --strategy, checked before any work."""
+    if keep is None:
+        raise CompressError("give --keep F (fraction of block-matrix parameters to keep) or --plan FILE")
+    planlib._check_keep(keep)
+    if strategy not in planlib.STRATEGIES:
+        raise CompressError(f"--strategy {strategy!r} is unknown; expected one of {', '.join(planlib.STRATEGIES)}")
+
+
+def _second_pass(an: Analysed, p: planlib.RankPlan, shards, quiet: bool) -> None:
+    """Read each layer again, factorise it at its planned ranks and append it to the shards (the rest as it is)."""
+    loaded, timer = an.loaded, an.timer
+    sh = loaded.shape
+    with Progress(sh.n_layers, "factorise", unit="layer", quiet=quiet) as bar:
+        for i in range(sh.n_layers):
+            w = layer_weights(loaded, i)
+            st = _load_stats(an.scratch, i) if an.scratch is not None else None
+            roots = analysis.layer_roots(st, an.damping, with_bias_row=not sh.rotary and sh.qkv_bias)
+            new = factorize_layer(sh, w, i, p.ranks(i), roots)
+            del w, st, roots
+            timer.lap("factorise")
+            for name in sorted(new):
+                shards.add(name, new.pop(name))
+            if an.scratch is not None:
+                (an.scratch / f"layer-{i}.safetensors").unlink()  # give the disk back as we go
+            timer.lap("write")
+            bar.update(1)
+    for name, ref in loaded.walk.refs.items():
+        if not name.startswith("layers."):
+            shards.add(name, arch.load_tensor(loaded.source, ref))
+    timer.lap("write")
 
 
 def compress(path: str, out: str, *, keep: float | None = None, plan_file: str | None = None,
              strategy: str = "global", texts: list[str] | None = None, weights_only: bool = False,
-             damping: float = 0.01, force: bool = False, quiet: bool = False, context: int = CALIB_CONTEXT,
-             n_blocks: int = CALIB_BLOCKS) -> dict:
+             damping: float = DEFAULT_DAMPING, force: bool = False, quiet: bool = False, context: int = CALIB_CONTEXT,
+             n_blocks: int = CALIB_BLOCKS, shard_size: int | str = DEFAULT_SHARD_SIZE) -> dict:
     """Compress a source checkpoint into a directory our runtime (and `expand`) reads.
 
+    Streams: one layer's weights are in memory at a time (see the pipeline note above), and the output is
+    written as it is made, to `model.safetensors`, or to shards with an index when it exceeds `shard_size`
+    (bytes, or a size such as "2GB"). Everything goes to a temporary sibling of `out` that is renamed at the
+    end, so a failure or an interruption leaves nothing behind.
+
+    Returns:
+        A report: out, source, method, the plan summary, seconds per stage, the files written.
     Raises:
-        CompressError: bad options, inputs or plan; the output exists without `force`.
+        CompressError: bad options, inputs or plan; the output exists without `force`; writing failed.
     """
-    from .io.write import atomic_dir, check_output, write_model_dir
+    from .io.write import ShardWriter, atomic_dir, check_output, parse_size, write_model_dir
     check_output(out, force)
     if not texts and not weights_only:
         raise CompressError("give calibration text with --text FILE, or pass --weights-only for plain SVD")
     if texts and weights_only:
         raise CompressError("--text and --weights-only exclude each other")
-    an = analyse(path, texts, damping=damping, quiet=quiet, context=context, n_blocks=n_blocks)
-    sh = an.loaded.shape
-    p = make_rank_plan(an, keep, strategy, plan_file)
-    new: dict[str, torch.Tensor] = {n: t for n, t in an.weights.items() if not n.startswith("layers.")}
-    with Progress(sh.n_layers, "factorise", unit="layer", quiet=quiet) as bar:
-        for i in range(sh.n_layers):
-            new.update(factorize_layer(sh, an.weights, i, p.ranks(i), an.roots[i]))
-            bar.update(1)
-    an.timer.lap("factorise")
-    src = an.loaded.source
-    manifest = {
-        "format_version": FORMAT_VERSION, "tool": "attncompress", "tool_version": _version(),
-        "source": {"path": Path(str(src.path)).name, "format": src.format,
-                   "files": [{"name": f.name, "bytes": f.stat().st_size, "sha256": sha256_file(f)} for f in src.files]},
-        "family": sh.family, "model_type": (src.config or {}).get("model_type"),
-        "shape": json.loads(sh.to_json()), "plan": json.loads(p.to_json()),
-        "method": {"factors": "whitened" if texts else "svd", "damping": damping if texts else None,
-                   "spectral_split": "sqrt(S) on both factors"},
-        "calibration": an.calibration,
-    }
+    if not plan_file:
+        _check_budget(keep, strategy)
+    shard_bytes = parse_size(shard_size)
+    # Everything that can be checked without reading the weights is checked before any work.
+    timer = Timer()
+    loaded = open_model(path)
+    given = read_plan_file(plan_file, loaded.shape) if plan_file else None
+    calib = _calibration_blocks(loaded, texts, context, n_blocks) if texts else None
+    timer.lap("load")
+    sh, src = loaded.shape, loaded.source
     with atomic_dir(out, force) as tmp:
-        write_model_dir(tmp, new, manifest, an.loaded.tokenizer, src.config)
-    an.timer.lap("write")
+        an = _first_pass(loaded, calib, damping, tmp / ".calibration", quiet, timer)
+        p = make_rank_plan(an, keep, strategy, plan=given)
+        with ShardWriter(tmp, shard_bytes) as shards:
+            _second_pass(an, p, shards, quiet)
+            files = shards.close()
+        if an.scratch is not None:
+            shutil.rmtree(an.scratch)
+        manifest = {
+            "format_version": FORMAT_VERSION, "tool": "attncompress", "tool_version": _version(),
+            "source": {"path": Path(str(src.path)).name, "format": src.format,
+                       "files": [{"name": f.name, "bytes": f.stat().st_size, "sha256": sha256_file(f)}
+                                 for f in src.files]},
+            "family": sh.family, "model_type": (src.config or {}).get("model_type"),
+            "shape": json.loads(sh.to_json()), "plan": json.loads(p.to_json()),
+            "method": {"factors": "whitened" if texts else "svd", "damping": damping if texts else None,
+                       "spectral_split": "sqrt(S) on both factors"},
+            "calibration": an.calibration,
+        }
+        write_model_dir(tmp, None, manifest, loaded.tokenizer, src.config)
+        timer.lap("write")
     summary = planlib.summary(sh, p)
     return {"out": str(out), "source": str(src.path), "method": manifest["method"], "plan": summary,
-            "seconds": an.timer.stages}
+            "seconds": timer.stages, "files": files}
 
 
 def _version() -> str:

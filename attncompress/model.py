@@ -29,6 +29,8 @@ class RMSNorm(nn.Module):
         self.eps = eps
 
     def forward(self, x):
+        if x.dtype == torch.float32 and self.weight.dtype == torch.float32:
+            return F.rms_norm(x, self.weight.shape, self.weight, self.eps)  # one fused op instead of eight
         # normalise in float32 whatever the activation dtype, as the reference does
         xf = x.float()
         return (xf * torch.rsqrt(xf.pow(2).mean(-1, keepdim=True) + self.eps)).type_as(x) * self.weight
@@ -43,8 +45,22 @@ class LayerNorm(nn.Module):
         return F.layer_norm(x, self.weight.shape, self.weight, self.bias, self.eps)
 
 
+def gemv_layout(w: torch.Tensor) -> torch.Tensor:
+    """The same (d_out, d_in) matrix, stored column-major when d_out > d_in (a copy), else row-major.
+
+    Why: a one-row product x Wᵀ (a decode step) reads every weight once, and on CPU (MKL, measured on
+    this project's machine) it streams a tall matrix at near the memory bandwidth only when Wᵀ is
+    contiguous, but at about half of it when W is (a dot product per output). For d_out ≤ d_in the
+    row-major layout is as fast or faster; many-row products run at about the same speed either way.
+    Example: (1536, 576) → strides (1, 1536); (576, 1536) → strides (1536, 1).
+    """
+    if w.dim() == 2 and w.shape[0] > w.shape[1]:
+        return w.T.contiguous().T  # (d_out, d_in) with strides (1, d_out)
+    return w.contiguous()
+
+
 class Linear(nn.Module):
-    """y = x Wᵀ + b with a dense weight (d_out, d_in)."""
+    """y = x Wᵀ + b with a dense weight (d_out, d_in) (the feed-forward ones laid out by `gemv_layout`)."""
 
     def __init__(self, weight: torch.Tensor, bias: torch.Tensor | None = None):
         super().__init__()
@@ -62,13 +78,14 @@ class Linear(nn.Module):
 class LowRankLinear(nn.Module):
     """y = (x B) Aᵀ + b: two thin matmuls, never the (d_out, d_in) product.
 
-    a: (d_out, r), b: (d_in, r). `b` is kept transposed, (r, d_in), so both
-    matmuls read their weights row-contiguously.
+    a: (d_out, r), b: (d_in, r). `b` is kept as `bt`, (r, d_in) row-major, i.e. b itself column-major,
+    and `a` is column-major (`gemv_layout`): each one-row product then streams its factor at the speed
+    the CPU's matrix-vector kernel reaches for that shape.
     """
 
     def __init__(self, a: torch.Tensor, b: torch.Tensor, bias: torch.Tensor | None = None):
         super().__init__()
-        self.a = nn.Parameter(a.contiguous())  # (d_out, r)
+        self.a = nn.Parameter(gemv_layout(a))  # (d_out, r)
         self.bt = nn.Parameter(b.T.contiguous())  # (r, d_in)
         self.bias = nn.Parameter(bias) if bias is not None else None
 
@@ -100,6 +117,26 @@ def apply_rotary(x: torch.Tensor, cos: torch.Tensor, sin: torch.Tensor) -> torch
     """Rotate each pair (i, i + p) of x: (b, heads, s, 2p) by cos/sin: (heads, s, 2p)."""
     x1, x2 = x.chunk(2, dim=-1)
     return x * cos + torch.cat([-x2, x1], dim=-1) * sin
+
+
+def rotary_rows(inv_freq: torch.Tensor, length: int) -> tuple[torch.Tensor, torch.Tensor]:
+    """Position-major tables for positions 0..length-1, made once and sliced at run time.
+
+    inv_freq: (g, p). Returns cos: (t, g, 2p) as `rotary_tables` (transposed) and a signed sin: (t, g, 2p)
+    whose first half is negated, so that `rotate(x, cos, sin)` needs no negation or concatenation.
+    """
+    cos, sin = rotary_tables(inv_freq, 0, length)  # (g, t, 2p)
+    p = inv_freq.shape[1]
+    sin = torch.cat([-sin[..., :p], sin[..., p:]], dim=-1)  # rotate_half(x)·sin = roll(x, p)·[-sin, sin]
+    return cos.transpose(0, 1).contiguous(), sin.transpose(0, 1).contiguous()  # (t, g, 2p)
+
+
+def rotate(x: torch.Tensor, cos: torch.Tensor, sin: torch.Tensor) -> torch.Tensor:
+    """`apply_rotary` with tables from `rotary_rows`: x (.., 2p) times cos, plus its halves swapped times signed sin.
+
+    Example: one pair, x = [1, 0], angle θ → [cos θ, sin θ] (a rotation by θ).
+    """
+    return torch.addcmul(x * cos, x.roll(x.shape[-1] // 2, dims=-1), sin)
 
 
 class KVCache:
@@ -144,18 +181,32 @@ class Attention(nn.Module):
             self.register_buffer("inv_freq", inv.float(), persistent=False)  # (g, p)
         else:
             self.pairs = None
+        self._tables = None  # rotary (cos, sin) for keys (t, g, w_qk) and queries (t, g, 1, w_qk), grown on demand
+
+    def _rotary(self, start: int, s: int) -> tuple[torch.Tensor, ...]:
+        """cos and signed sin rows of positions start..start+s-1 for keys (s, g, w_qk) and queries (s, g, 1, w_qk)."""
+        end = start + s
+        if self._tables is None or self._tables[0].shape[0] < end:
+            with torch.inference_mode(False):  # ordinary tensors, usable later with autograd too
+                cos, sin = rotary_rows(self.inv_freq, max(256, 1 << (end - 1).bit_length()))
+                self._tables = (cos, sin, cos[:, :, None], sin[:, :, None])  # the query views broadcast over rep
+        return tuple(t[start:end] for t in self._tables)
 
     def forward(self, x, *, mask=None, cache: KVCache | None = None, layer: int = 0, start: int = 0):
         b, s, _ = x.shape
         h, g, wqk, wvo = self.n_heads, self.n_kv_heads, self.w_qk, self.w_vo
-        q = self.q(x).view(b, s, h, wqk).transpose(1, 2)  # (b, h, s, w_qk)
-        k = self.k(x).view(b, s, g, wqk).transpose(1, 2)  # (b, g, s, w_qk)
-        v = self.v(x).view(b, s, g, wvo).transpose(1, 2)  # (b, g, s, w_vo)
+        rep = h // g
+        q = self.q(x).view(b, s, g, rep, wqk)  # (b, s, g, rep, w_qk): query head j = group j // rep, member j % rep
+        k = self.k(x).view(b, s, g, wqk)  # (b, s, g, w_qk)
+        v = self.v(x).view(b, s, g, wvo)  # (b, s, g, w_vo)
         if self.pairs is not None:
-            cos, sin = rotary_tables(self.inv_freq, start, s)  # (g, s, w_qk)
-            k = apply_rotary(k, cos, sin)
-            rep = h // g
-            q = apply_rotary(q, cos.repeat_interleave(rep, 0), sin.repeat_interleave(rep, 0))  # query head j uses group j // rep
+            cos, sin, cos_q, sin_q = self._rotary(start, s)  # (s, g, w_qk), (s, g, 1, w_qk)
+            k = rotate(k, cos, sin)
+            q = rotate(q, cos_q, sin_q)  # the queries of a group share its key's pairs
+        if cache is not None and s == 1:
+            return self._step(q, k, v, mask, cache, layer, start)
+        q = q.view(b, s, h, wqk).transpose(1, 2)  # (b, h, s, w_qk)
+        k, v = k.transpose(1, 2), v.transpose(1, 2)  # (b, g, s, w_qk), (b, g, s, w_vo)
         if cache is not None:
             cache.k[layer][:b, :, start:start + s] = k
             cache.v[layer][:b, :, start:start + s] = v
@@ -170,9 +221,36 @@ class Attention(nn.Module):
                 # new positions start+i see cached positions ≤ start+i
                 causal = torch.ones(s, t, dtype=torch.bool).tril(diagonal=t - s)
                 mask = causal if mask is None else mask & causal
+        # the CPU's fused kernel needs one width for q, k and v (else a slow unfused path runs); zero
+        # columns add nothing to any score, and padded output columns are dropped
+        if wqk < wvo:
+            q, k = F.pad(q, (0, wvo - wqk)), F.pad(k, (0, wvo - wqk))  # (b, h|g, s, w_vo)
+        elif wvo < wqk:
+            v = F.pad(v, (0, wqk - wvo))  # (b, g, t, w_qk)
         y = F.scaled_dot_product_attention(q, k, v, attn_mask=mask, is_causal=is_causal, scale=self.scale,
-                                           enable_gqa=g != h)  # (b, h, s, w_vo)
+                                           enable_gqa=g != h)  # (b, h, s, max(w_qk, w_vo))
+        if wvo < wqk:
+            y = y[..., :wvo]  # (b, h, s, w_vo)
         return self.o(y.transpose(1, 2).reshape(b, s, h * wvo))  # (b, s, d)
+
+    def _step(self, q, k, v, mask, cache: KVCache, layer: int, start: int):
+        """One new position against the cache: one batched matmul per product, the group's queries as rows.
+
+        SDPA with grouped heads would expand the keys per query head; here the `rep` queries of a group
+        are the rows of one (rep, w_qk) @ (w_qk, t) product against the group's cached keys, as stored.
+        """
+        b, _, g, rep, wqk = q.shape
+        kc, vc = cache.k[layer], cache.v[layer]  # (B, g, T, w_qk), (B, g, T, w_vo)
+        if b != kc.shape[0]:
+            kc, vc = kc[:b], vc[:b]  # a smaller batch than the cache was made for
+        kc.select(2, start).copy_(k.view(b, g, wqk))  # k: (b, 1, g, w_qk) → (b, g, w_qk)
+        vc.select(2, start).copy_(v.view(b, g, self.w_vo))
+        kc, vc = kc.narrow(2, 0, start + 1), vc.narrow(2, 0, start + 1)  # (b, g, t, w_qk), (b, g, t, w_vo)
+        att = torch.matmul(q.view(b, g, rep, wqk), kc.transpose(2, 3)).mul_(self.scale)  # (b,g,rep,w)@(b,g,w,t) → (b,g,rep,t)
+        if mask is not None:
+            att = att.masked_fill(~mask[..., :start + 1], float("-inf"))  # mask: (b, 1, 1, t) padded keys
+        y = torch.matmul(att.softmax(-1), vc)  # (b, g, rep, t) @ (b, g, t, w_vo) → (b, g, rep, w_vo)
+        return self.o(y.view(b, 1, g * rep * self.w_vo))  # heads in order j = group·rep + member: (b, 1, d)
 
 
 _ACTS = {"silu": F.silu, "gelu": F.gelu, "gelu_tanh": lambda x: F.gelu(x, approximate="tanh")}
@@ -217,7 +295,8 @@ class Transformer(nn.Module):
                  final_norm=None, lm_head=None):
         super().__init__()
         self.shape = shape
-        self.tokens = nn.Parameter(tokens)  # (vocab, d)
+        # a tied table is also the output head: lay it out for one-row logits (embedding rows stay cheap to gather)
+        self.tokens = nn.Parameter(gemv_layout(tokens) if lm_head is None and shape.family != "bert" else tokens)  # (vocab, d)
         self.positions = nn.Parameter(positions) if positions is not None else None
         self.types = nn.Parameter(types) if types is not None else None
         self.embed_norm, self.final_norm = embed_norm, final_norm
@@ -262,6 +341,8 @@ def _linear(w: dict, name: str) -> nn.Module:
     bias = w.get(name + ".bias")
     if name + ".a" in w:
         return LowRankLinear(w[name + ".a"], w[name + ".b"], bias)
+    if ".ff." in name:  # attention projections stay row-major: per-head code views their rows and columns
+        return Linear(gemv_layout(w[name + ".weight"]), bias)
     return Linear(w[name + ".weight"], bias)
 
 
@@ -271,33 +352,40 @@ def _norm(shape: ModelShape, w: dict, name: str):
     return LayerNorm(w[name + ".weight"], w[name + ".bias"], shape.norm_eps)
 
 
-def build(shape: ModelShape, weights: dict[str, torch.Tensor]) -> Transformer:
-    """Assemble the runtime from canonical weights (dense or factorised; see `arch` for names).
+def build_block(shape: ModelShape, weights: dict[str, torch.Tensor], i: int) -> Block:
+    """Block `i` of the runtime from canonical weights; only the `layers.{i}.*` tensors are read.
 
     Rotary layers use `layers.{i}.attn.pairs` (g, p) when present (a compressed model); otherwise every pair.
     """
-    blocks = []
-    for i in range(shape.n_layers):
-        p = f"layers.{i}."
-        pairs = None
-        if shape.rotary:
-            pairs = weights.get(p + "attn.pairs")
-            if pairs is None:
-                pairs = torch.arange(shape.n_pairs).expand(shape.n_kv_heads, -1)
-        attn = Attention(_linear(weights, p + "attn.q"), _linear(weights, p + "attn.k"),
-                         _linear(weights, p + "attn.v"), _linear(weights, p + "attn.o"),
-                         n_heads=shape.n_heads, n_kv_heads=shape.n_kv_heads, head_dim=shape.head_dim,
-                         causal=shape.causal, pairs=pairs, rope_theta=shape.rope_theta)
-        if shape.gated:
-            ff = GatedMLP(_linear(weights, p + "ff.gate"), _linear(weights, p + "ff.up"),
-                          _linear(weights, p + "ff.down"), shape.activation)
-        else:
-            ff = MLP(_linear(weights, p + "ff.up"), _linear(weights, p + "ff.down"), shape.activation)
-        blocks.append(Block(_norm(shape, weights, p + "attn_norm"), attn, _norm(shape, weights, p + "ff_norm"), ff,
-                            shape.pre_norm))
+    p = f"layers.{i}."
+    pairs = None
+    if shape.rotary:
+        pairs = weights.get(p + "attn.pairs")
+        if pairs is None:
+            pairs = torch.arange(shape.n_pairs).expand(shape.n_kv_heads, -1)
+    attn = Attention(_linear(weights, p + "attn.q"), _linear(weights, p + "attn.k"),
+                     _linear(weights, p + "attn.v"), _linear(weights, p + "attn.o"),
+                     n_heads=shape.n_heads, n_kv_heads=shape.n_kv_heads, head_dim=shape.head_dim,
+                     causal=shape.causal, pairs=pairs, rope_theta=shape.rope_theta)
+    if shape.gated:
+        ff = GatedMLP(_linear(weights, p + "ff.gate"), _linear(weights, p + "ff.up"),
+                      _linear(weights, p + "ff.down"), shape.activation)
+    else:
+        ff = MLP(_linear(weights, p + "ff.up"), _linear(weights, p + "ff.down"), shape.activation)
+    return Block(_norm(shape, weights, p + "attn_norm"), attn, _norm(shape, weights, p + "ff_norm"), ff,
+                 shape.pre_norm)
+
+
+def build(shape: ModelShape, weights: dict[str, torch.Tensor], *, blocks: bool = True) -> Transformer:
+    """Assemble the runtime from canonical weights (dense or factorised; see `arch` for names).
+
+    `blocks=False` builds the embedding alone (no blocks; norms and head only if their weights are given), so
+    `hidden` gives the first block's input: for running the blocks one at a time.
+    """
+    layers = [build_block(shape, weights, i) for i in range(shape.n_layers)] if blocks else []
     return Transformer(
-        shape, weights["embed.tokens"], blocks, positions=weights.get("embed.positions"),
+        shape, weights["embed.tokens"], layers, positions=weights.get("embed.positions"),
         types=weights.get("embed.types"),
         embed_norm=_norm(shape, weights, "embed.norm") if "embed.norm.weight" in weights else None,
         final_norm=_norm(shape, weights, "final_norm") if "final_norm.weight" in weights else None,
-        lm_head=Linear(weights["lm_head.weight"]) if "lm_head.weight" in weights else None)
+        lm_head=Linear(gemv_layout(weights["lm_head.weight"])) if "lm_head.weight" in weights else None)

@@ -71,3 +71,192 @@ def write_spectrum(r: dict, out: str, force: bool) -> str:
         fig.savefig(tmp / "energy.png", dpi=110)
         plt.close(fig)
     return "plots in energy.png"
+
+
+# ------------------------------------------------------------------------------------------------ compare
+
+def _bytes(n: int) -> str:
+    return f"{n / 1e6:.1f} MB" if n >= 1e5 else f"{n:,} B"
+
+
+def _fmt(x, spec: str = ".4g") -> str:
+    return "-" if x is None else format(x, spec)
+
+
+def _label(m: dict) -> str:
+    plan = m.get("plan")
+    extra = f", keep {plan['keep']:g} {plan['strategy']}" if plan else ""
+    return f"{m['path']} ({m['format']}, {m['family']}{extra})"
+
+
+def compare_rows(r: dict) -> list[tuple[str, str, str, str]]:
+    """The comparison as (what, A, B, B vs A) rows, shared by the terminal table and the markdown report."""
+    a, b, q, sp = r["a"], r["b"], r["quality"], r["speed"]
+    ratio = r["ratios"]
+    rows = [("parameters", _m(a["parameters"]["total"]), _m(b["parameters"]["total"]), _fmt(ratio["parameters"], ".3f")),
+            ("block-matrix parameters", _m(a["parameters"]["block_matrices"]), _m(b["parameters"]["block_matrices"]),
+             _fmt(ratio["block_matrices"], ".3f"))]
+    disk = [_bytes(m["disk"]["bytes"]) + (" (quantised)" if m["disk"]["quantised"] else "") for m in (a, b)]
+    rows.append(("bytes on disk", disk[0], disk[1], _fmt(ratio["disk_bytes"], ".3f")))
+    rows.append(("bytes in memory (float32)", _bytes(a["runtime_bytes"]), _bytes(b["runtime_bytes"]),
+                 _fmt(ratio["runtime_bytes"], ".3f")))
+    if a["kv_bytes_per_token"] is not None:
+        rows.append(("KV cache bytes/token", f"{a['kv_bytes_per_token']:,}", f"{b['kv_bytes_per_token']:,}",
+                     _fmt(ratio["kv_bytes_per_token"], ".3f")))
+    if q and q["kind"] == "perplexity":
+        rows.append((f"perplexity ({q['tokens']:,} tokens)", f"{q['a']:.3f}", f"{q['b']:.3f}", f"{q['ratio']:.3f}"))
+    elif q:
+        c = q["cosine"]
+        rows.append((f"cosine A·B per line ({q['lines']} lines)", "", f"mean {c['mean']:.4f} p5 {c['p5']:.4f} "
+                     f"min {c['min']:.4f}", ""))
+        rows.append(("top-1 neighbour unchanged", "", f"{100 * q['neighbour_agreement']:.1f}%", ""))
+    if sp:
+        if "prompt" in sp:
+            p, d = sp["prompt"], sp["decode"]
+            rows.append((f"prompt 1x{p['tokens']} (ms)", f"{p['a_ms']:.1f}", f"{p['b_ms']:.1f}",
+                         f"{p['speedup']:.2f}x faster"))
+            rows.append(("decode (ms/token)", f"{d['a_ms']:.1f}", f"{d['b_ms']:.1f}", f"{d['speedup']:.2f}x faster"))
+            if "a_limit_ms" in d:
+                rows.append(("  bytes-read limit (ms/token)", f"{d['a_limit_ms']:.1f}", f"{d['b_limit_ms']:.1f}",
+                             f"{d['limit_speedup']:.2f}x at best"))
+                rows.append(("  decode / limit", f"{d['a_over_limit']:.2f}", f"{d['b_over_limit']:.2f}", ""))
+        if "batch" in sp:
+            t = sp["batch"]
+            rows.append((f"batch of {t['sentences']} sentences (ms)", f"{t['a_ms']:.1f}", f"{t['b_ms']:.1f}",
+                         f"{t['speedup']:.2f}x faster"))
+    return rows
+
+
+def _speed_note(sp: dict | None) -> str:
+    if not sp:
+        return "speed not measured"
+    bw = f"streaming read {sp['bandwidth_gb_s']:.1f} GB/s; " if "bandwidth_gb_s" in sp else ""
+    return (f"speed: same process, A and B interleaved, median of {sp['runs']} runs, {sp['threads']} threads; "
+            f"{bw}speedup = time A / time B")
+
+
+def compare_text(r: dict) -> str:
+    """The comparison as a terminal table."""
+    rows = compare_rows(r)
+    w0 = max(len(x[0]) for x in rows)
+    w1 = max(max(len(x[1]) for x in rows), 1)
+    w2 = max(len(x[2]) for x in rows)
+    out = [f"A: {_label(r['a'])}", f"B: {_label(r['b'])}", "",
+           f"{'':<{w0}}  {'A':>{w1}}  {'B':>{w2}}  B vs A"]
+    out += [f"{x[0]:<{w0}}  {x[1]:>{w1}}  {x[2]:>{w2}}  {x[3]}" for x in rows]
+    out.append("")
+    for m, name in ((r["a"], "A"), (r["b"], "B")):
+        if m["disk"]["note"]:
+            out.append(f"{name}: {m['disk']['note']}")
+    if r["quality"] and r["quality"].get("tokenizer"):
+        out.append(f"tokenizers: {r['quality']['tokenizer']}")
+    out.append(_speed_note(r["speed"]))
+    return "\n".join(out)
+
+
+def compare_markdown(r: dict, plots: list[str]) -> str:
+    """The comparison as a markdown report that links the given PNG files."""
+    md = ["# Comparison", "", f"- **A**: `{r['a']['path']}` ({r['a']['format']}, {r['a']['family']})",
+          f"- **B**: `{r['b']['path']}` ({r['b']['format']}, {r['b']['family']})", "",
+          "| | A | B | B vs A |", "|---|---:|---:|---|"]
+    md += [f"| {x[0].strip()} | {x[1]} | {x[2]} | {x[3]} |" for x in compare_rows(r)]
+    md += ["", _speed_note(r["speed"]) + "."]
+    for m, name in ((r["a"], "A"), (r["b"], "B")):
+        if m["disk"]["note"]:
+            md.append(f"\n{name}: {m['disk']['note']}.")
+    q = r["quality"]
+    if q:
+        md += ["", "Texts: " + ", ".join(f"`{t['name']}` ({t['bytes']:,} bytes, sha256 {t['sha256'][:12]}…)"
+                                         for t in q["texts"]) if q["texts"] else "Texts: lines given directly."]
+    for m, name in ((r["a"], "A"), (r["b"], "B")):
+        plan = m.get("plan")
+        if not plan:
+            continue
+        kinds = [k for k in ("qk", "vo") if k in plan["layers"][0]] + list(plan["layers"][0]["ff"])
+        md += ["", f"## Ranks of {name} (plan {plan['strategy']}, keep {plan['keep']:g})", "",
+               "| layer | " + " | ".join(kinds) + " |", "|---|" + "---:|" * len(kinds)]
+        for L in plan["layers"]:
+            vals = [L["qk"], L["vo"]] + [L["ff"][k] for k in kinds[2:]]
+            md.append(f"| {L['layer']} | " + " | ".join("dense" if v is None else str(v) for v in vals) + " |")
+    if plots:
+        md += ["", "## Plots", ""] + [f"![{p[:-4]}]({p})" for p in plots]
+    return "\n".join(md) + "\n"
+
+
+def _rank_plot(plt, r: dict, path) -> bool:
+    """Rank per layer and pair type for each compressed side; False when neither has a plan."""
+    sides = [(n, m) for n, m in (("A", r["a"]), ("B", r["b"])) if m.get("plan")]
+    if not sides:
+        return False
+    plan0 = sides[0][1]["plan"]
+    kinds = ["qk", "vo"] + list(plan0["layers"][0]["ff"])
+    fig, axes = plt.subplots(1, len(kinds), figsize=(3.0 * len(kinds), 2.8), squeeze=False)
+    for ax, kind in zip(axes[0], kinds):
+        for name, m in sides:
+            layers = m["plan"]["layers"]
+            ys = [L[kind] if kind in ("qk", "vo") else L["ff"][kind] for L in layers]
+            xs = [L["layer"] for L in layers]
+            ax.plot([x for x, y in zip(xs, ys) if y is not None], [y for y in ys if y is not None], "o-", ms=3,
+                    lw=1, label=f"{name} keep {m['plan']['keep']:g}")
+            dense = [x for x, y in zip(xs, ys) if y is None]
+            if dense:  # dense matrices: a mark along the top edge
+                ax.plot(dense, [0.97] * len(dense), "x", ms=4, transform=ax.get_xaxis_transform(),
+                        label=f"{name} dense")
+        ax.set_title(kind + (" (pairs)" if kind == "qk" and r["a"]["family"] == "llama" else ""))
+        ax.set_xlabel("layer")
+    axes[0][0].set_ylabel("kept rank")
+    axes[0][-1].legend(fontsize=7)
+    fig.tight_layout()
+    fig.savefig(path, dpi=110)
+    plt.close(fig)
+    return True
+
+
+def _bar_plot(plt, labels: list[str], values: list[list[float]], series: list[str], ylabel: str, path) -> None:
+    """Grouped bars: one group per label, one bar per series."""
+    fig, ax = plt.subplots(figsize=(1.2 + 1.6 * len(labels), 2.8))
+    width = 0.8 / len(series)
+    for i, name in enumerate(series):
+        ax.bar([j + i * width for j in range(len(labels))], [v[i] for v in values], width, label=name)
+    ax.set_xticks([j + width * (len(series) - 1) / 2 for j in range(len(labels))], labels)
+    ax.set_ylabel(ylabel)
+    ax.legend(fontsize=8)
+    fig.tight_layout()
+    fig.savefig(path, dpi=110)
+    plt.close(fig)
+
+
+def write_compare(r: dict, out: str, force: bool) -> str:
+    """compare.json, report.md and (with matplotlib) ranks.png, quality.png and speed.png in one directory."""
+    from .io.write import atomic_dir, dumps
+    with atomic_dir(out, force) as tmp:
+        (tmp / "compare.json").write_text(dumps(r), encoding="utf-8")
+        plots, note = [], "plots skipped: install the plots extra (pip install 'attncompress[plots]') for PNG plots"
+        try:
+            import matplotlib
+        except ImportError:
+            matplotlib = None
+        if matplotlib is not None:
+            matplotlib.use("Agg")
+            import matplotlib.pyplot as plt
+            if _rank_plot(plt, r, tmp / "ranks.png"):
+                plots.append("ranks.png")
+            q = r["quality"]
+            if q and q["kind"] == "perplexity":
+                _bar_plot(plt, ["perplexity"], [[q["a"], q["b"]]], ["A", "B"], "perplexity", tmp / "quality.png")
+                plots.append("quality.png")
+            elif q:
+                c = q["cosine"]
+                _bar_plot(plt, ["mean", "p5", "min", "top-1 kept"],
+                          [[c["mean"]], [c["p5"]], [c["min"]], [q["neighbour_agreement"]]], ["A vs B"],
+                          "cosine / fraction", tmp / "quality.png")
+                plots.append("quality.png")
+            sp = r["speed"]
+            if sp:
+                keys = [k for k in ("prompt", "decode", "batch") if k in sp]
+                _bar_plot(plt, keys, [[sp[k]["a_ms"], sp[k]["b_ms"]] for k in keys], ["A", "B"], "ms (median)",
+                          tmp / "speed.png")
+                plots.append("speed.png")
+            note = "plots in " + ", ".join(plots) if plots else "no plots (nothing to plot)"
+        (tmp / "report.md").write_text(compare_markdown(r, plots), encoding="utf-8")
+    return note

@@ -99,7 +99,7 @@ def read_lines(path: str | Path) -> list[str]:
     return [line.strip() for line in text.splitlines() if line.strip()]
 
 
-def token_blocks(ids: list[int] | torch.Tensor, context: int, *, source: str) -> torch.Tensor:
+def token_blocks(ids: list[int] | torch.Tensor, context: int, *, source: str, option: str = "--context") -> torch.Tensor:
     """Cut a token id sequence into non-overlapping blocks of `context` tokens.
 
     The tail that does not fill a whole block is dropped.
@@ -108,6 +108,7 @@ def token_blocks(ids: list[int] | torch.Tensor, context: int, *, source: str) ->
         ids: token ids, a list or a 1-D integer tensor `(n_tokens,)`.
         context: tokens per block, positive.
         source: what the ids came from (a file name or corpus name), for messages.
+        option: the command-line option that sets `context`, named in messages.
 
     Returns:
         blocks: `(n_blocks, context)` int64, a fresh tensor (not a view of `ids`),
@@ -118,7 +119,7 @@ def token_blocks(ids: list[int] | torch.Tensor, context: int, *, source: str) ->
             sequence; fewer than `context` tokens.
     """
     if isinstance(context, bool) or not isinstance(context, int) or context <= 0:
-        raise CompressError(f"--context: must be a positive number of tokens, got {context!r}")
+        raise CompressError(f"{option}: must be a positive number of tokens, got {context!r}")
     if isinstance(ids, torch.Tensor):
         if ids.dim() != 1:
             raise CompressError(f"{source}: token ids must be one sequence (1-D), got shape {tuple(ids.shape)}")
@@ -133,6 +134,6 @@ def token_blocks(ids: list[int] | torch.Tensor, context: int, *, source: str) ->
     n_blocks = n // context
     if n_blocks < 1:
         raise CompressError(
-            f"{source}: {n} tokens is shorter than one block of {context}; give more text or a smaller --context")
+            f"{source}: {n} tokens is shorter than one block of {context}; give more text or a smaller {option}")
     # clone so later in-place edits of the blocks never reach the caller's ids
     return flat[: n_blocks * context].reshape(n_blocks, context).clone()  # (n_blocks, context)

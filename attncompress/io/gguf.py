@@ -6,6 +6,7 @@ i + head_dim/2. `get` undoes the permutation so one runtime serves both.
 """
 from __future__ import annotations
 
+import mmap
 from pathlib import Path
 
 import numpy as np
@@ -79,8 +80,9 @@ class GGUFSource(TensorSource):
                 self.unused_gguf.append(t.name)
                 name = t.name  # kept under its own name so the walker reports it
             if t.tensor_type.name not in _dequantisable():
-                raise CompressError(f"{path}: tensor {t.name} has quantisation type {t.tensor_type.name}, "
-                                    f"which cannot be dequantised; expected one of {', '.join(sorted(_dequantisable()))}")
+                raise CompressError(f"{path}: tensor {t.name} has quantisation type {t.tensor_type.name}, which the "
+                                    "installed gguf package cannot dequantise; expected a float type or a block "
+                                    "quantisation it reads (e.g. Q4_0, Q4_K, Q6_K, Q8_0)")
             shape = tuple(int(d) for d in reversed(t.shape.tolist()))  # GGUF lists the fastest dimension first
             self._index[name] = (shape, t.tensor_type.name, path)
             self._tensors[name] = t
@@ -123,11 +125,25 @@ class GGUFSource(TensorSource):
         t = self._tensors[name]
         arr = np.asarray(dequantize(t.data, t.tensor_type), dtype=np.float32)
         w = torch.from_numpy(arr.reshape(self._index[name][0]).copy())
+        del arr
+        self._release(t)
         if name.endswith(("q_proj.weight", "q_proj.bias")):
             w = unpermute_rows(w, self.config["num_attention_heads"])
         elif name.endswith(("k_proj.weight", "k_proj.bias")):
             w = unpermute_rows(w, self.config["num_key_value_heads"])  # keys: the key/value head count
         return w
+
+    def _release(self, t) -> None:
+        """Drop the mapped pages of a tensor already copied out, so reading a whole file does not keep it resident."""
+        mm = getattr(self._reader.data, "_mmap", None)  # the reader maps the whole file once
+        if mm is None or not hasattr(mm, "madvise"):
+            return
+        page = mmap.PAGESIZE
+        start = t.data_offset - t.data_offset % page  # madvise needs a page-aligned start
+        try:
+            mm.madvise(mmap.MADV_DONTNEED, start, min(t.data_offset + t.n_bytes, len(mm)) - start)
+        except (OSError, ValueError):
+            pass  # only a memory saving; reading goes on either way
 
     def tokenizer(self):
         from .gguf_meta import tokenizer_from_gguf

@@ -1,19 +1,22 @@
 """Lazy tensor access by name for every supported checkpoint format.
 
 A `TensorSource` lists names, shapes and dtypes without loading anything, then
-hands out one tensor at a time. Safetensors files are memory-mapped after their
-header has been checked against the file's size; GGUF tensors are dequantised to
-float32 one at a time; torch state dicts load only with `weights_only=True`.
+hands out one tensor at a time. Safetensors files have their header checked
+against the file's size first; each tensor is then read into its own buffer, so
+the bytes of a tensor the caller has dropped do not stay resident (a mapping of
+the whole file would keep every page it ever touched, up to the model's size).
+GGUF tensors are dequantised to float32 one at a time; torch state dicts load
+only with `weights_only=True`.
 """
 from __future__ import annotations
 
 import json
+import math
 import os
 import pickle
 import struct
 from pathlib import Path
 
-import numpy as np
 import torch
 
 from ..errors import CompressError
@@ -25,6 +28,7 @@ _ST_DTYPES = {
     "U8": (torch.uint8, 1), "BOOL": (torch.bool, 1),
 }
 MANIFEST = "attncompress.json"  # marks a directory written by this tool
+MAX_HEADER = 100_000_000  # bytes; the safetensors library's own limit for a header
 
 
 class TensorSource:
@@ -88,36 +92,64 @@ class SafetensorsSource(TensorSource):
 
     def __init__(self, path: Path, files: list[Path], config: dict | None):
         super().__init__(path, config)
-        self._handles: dict[Path, object] = {}
+        self._spans: dict[str, tuple[int, int]] = {}  # name → (first byte, end) in its file
         for f in files:
-            for name, (shape, dtype) in read_safetensors_header(f).items():
+            for name, (shape, dtype, begin, end) in read_safetensors_header(f).items():
                 if name in self._index:
                     raise CompressError(f"{f}: tensor {name} also stored in {self._index[name][2]}; expected each once")
                 self._index[name] = (shape, dtype, f)
+                self._spans[name] = (begin, end)
 
     def get(self, name: str) -> torch.Tensor:
-        f = self._index[name][2]
-        if f not in self._handles:
-            from safetensors import safe_open
-            self._handles[f] = safe_open(str(f), framework="pt")
-        return self._handles[f].get_tensor(name)
+        shape, dtype, f = self._index[name]
+        begin, end = self._spans[name]
+        buf = torch.empty(end - begin, dtype=torch.uint8)  # a fresh buffer: freed with the tensor
+        view, got = memoryview(buf.numpy()), 0
+        try:
+            with open(f, "rb") as fh:
+                fh.seek(begin)
+                while got < len(view):  # one read() may return less than asked for
+                    n = fh.readinto(view[got:])
+                    if not n:
+                        break
+                    got += n
+        except OSError as e:
+            raise CompressError(f"{f}: cannot read tensor {name} ({e.strerror or e}); check the file") from None
+        if got < len(view):
+            raise CompressError(f"{f}: tensor {name} ends at byte {end} but the file stops at {begin + got}; "
+                                "the file was truncated after it was opened")
+        return buf.view(_ST_DTYPES[dtype][0]).reshape(shape)
 
 
-def read_safetensors_header(path: Path) -> dict[str, tuple[tuple[int, ...], str]]:
-    """Check a safetensors header against the file before anything is mapped.
+def _open_readable(path: Path):
+    """Open a file for reading; a permission or I/O problem becomes a CompressError naming it."""
+    if not os.access(path, os.R_OK):
+        raise CompressError(f"{path}: not readable (permission denied); check its permissions")
+    try:
+        return open(path, "rb")
+    except OSError as e:
+        raise CompressError(f"{path}: cannot be read ({e.strerror or e}); check the file and its permissions") from None
 
-    Returns name → (shape, dtype). Raises CompressError for a truncated file, a
-    header that is not JSON, an unsupported dtype, offsets that overlap, leave
-    gaps, disagree with the shape, or point past the end of the file.
+
+def read_safetensors_header(path: Path) -> dict[str, tuple[tuple[int, ...], str, int, int]]:
+    """Check a safetensors header against the file before any tensor is read.
+
+    Returns name → (shape, dtype, first byte, end byte), the bytes counted from the start of the
+    file. Raises CompressError for an unreadable or truncated file, a header that is not JSON, a
+    malformed entry, an unsupported dtype, or offsets that overlap, disagree with the shape or
+    point past the end of the file.
     """
-    size = path.stat().st_size
-    with open(path, "rb") as fh:
+    with _open_readable(path) as fh:
+        size = os.fstat(fh.fileno()).st_size
         head = fh.read(8)
         if len(head) < 8:
             raise CompressError(f"{path}: truncated safetensors file ({size} bytes); expected an 8-byte header length")
         (n,) = struct.unpack("<Q", head)
         if n > size - 8:
             raise CompressError(f"{path}: header claims {n} bytes but the file has {size - 8} after the length; the file is truncated")
+        if n > MAX_HEADER:
+            raise CompressError(f"{path}: header claims {n} bytes, above the {MAX_HEADER}-byte limit; "
+                                "the file is not safetensors or is corrupt")
         raw = fh.read(n)
     try:
         header = json.loads(raw)
@@ -126,29 +158,47 @@ def read_safetensors_header(path: Path) -> dict[str, tuple[tuple[int, ...], str]
     if not isinstance(header, dict):
         raise CompressError(f"{path}: safetensors header is not a JSON object; the file is corrupt")
     header.pop("__metadata__", None)
-    data_size = size - 8 - n
+    data_start, data_size = 8 + n, size - 8 - n
     out, spans = {}, []
     for name, info in header.items():
-        try:
-            dtype, shape, (start, end) = info["dtype"], tuple(int(d) for d in info["shape"]), info["data_offsets"]
-        except (KeyError, TypeError, ValueError):
-            raise CompressError(f"{path}: tensor {name} has a malformed header entry; expected dtype, shape, data_offsets") from None
-        if dtype not in _ST_DTYPES:
-            raise CompressError(f"{path}: tensor {name} has unsupported dtype {dtype}; expected one of {', '.join(_ST_DTYPES)}")
-        need = int(np.prod(shape, dtype=np.int64)) * _ST_DTYPES[dtype][1]
-        if not (isinstance(start, int) and isinstance(end, int)) or start < 0 or end < start:
-            raise CompressError(f"{path}: tensor {name} has invalid data offsets [{start}, {end}]")
+        dtype, shape, start, end = _header_entry(path, name, info)
+        need = math.prod(shape) * _ST_DTYPES[dtype][1]  # exact integers: no overflow on absurd shapes
         if end - start != need:
             raise CompressError(f"{path}: tensor {name} spans {end - start} bytes but shape {list(shape)} of {dtype} needs {need}")
         if end > data_size:
             raise CompressError(f"{path}: tensor {name} ends at byte {end} but the data section has {data_size} bytes; the file is truncated")
-        out[name] = (shape, dtype)
+        out[name] = (shape, dtype, data_start + start, data_start + end)
         spans.append((start, end, name))
     spans.sort()
     for (s0, e0, a), (s1, e1, b) in zip(spans, spans[1:]):
         if s1 < e0:
             raise CompressError(f"{path}: tensors {a} and {b} overlap in the data section; the header is corrupt")
     return out
+
+
+def _header_entry(path: Path, name: str, info) -> tuple[str, tuple[int, ...], int, int]:
+    """(dtype, shape, start, end) of one header entry, each checked for type and range."""
+    def bad(what):
+        return CompressError(f"{path}: tensor {name} has {what}; the header is corrupt")
+    if not isinstance(info, dict) or not {"dtype", "shape", "data_offsets"} <= set(info):
+        raise bad("a malformed header entry (expected dtype, shape, data_offsets)")
+    dtype, shape, offsets = info["dtype"], info["shape"], info["data_offsets"]
+    if not isinstance(dtype, str):
+        raise bad(f"dtype {dtype!r}, not a name")
+    if dtype not in _ST_DTYPES:
+        raise CompressError(f"{path}: tensor {name} has unsupported dtype {dtype}; expected one of {', '.join(_ST_DTYPES)}")
+    if not isinstance(shape, list) or not all(_is_count(d) for d in shape):
+        raise bad(f"shape {shape!r}; expected a list of non-negative whole numbers")
+    if not (isinstance(offsets, list) and len(offsets) == 2 and all(_is_count(o) for o in offsets)) \
+            or offsets[1] < offsets[0]:
+        raise CompressError(f"{path}: tensor {name} has invalid data offsets {offsets!r}; "
+                            "expected [start, end] with 0 <= start <= end")
+    return dtype, tuple(shape), offsets[0], offsets[1]
+
+
+def _is_count(x) -> bool:
+    """A non-negative int that is not a bool (JSON true would pass isinstance(x, int))."""
+    return isinstance(x, int) and not isinstance(x, bool) and x >= 0
 
 
 class TorchSource(TensorSource):
@@ -196,12 +246,15 @@ def open_source(path: str | os.PathLike) -> TensorSource:
     if not path.exists():
         raise CompressError(f"{path}: no such file or directory; expected a model directory, .safetensors or .gguf file")
     if path.is_dir():
+        if not os.access(path, os.R_OK | os.X_OK):
+            raise CompressError(f"{path}: directory not readable (permission denied); check its permissions")
         config = _read_json(path / "config.json") if (path / "config.json").is_file() else None
         index = path / "model.safetensors.index.json"
         if index.is_file():
             weight_map = _read_json(index).get("weight_map")
-            if not isinstance(weight_map, dict) or not weight_map:
-                raise CompressError(f"{index}: expected a non-empty 'weight_map' of tensor names to shard files")
+            if not isinstance(weight_map, dict) or not weight_map or \
+                    not all(isinstance(f, str) and Path(f).name == f for f in weight_map.values()):
+                raise CompressError(f"{index}: expected a non-empty 'weight_map' of tensor names to shard file names in the same directory")
             shards = sorted({path / f for f in weight_map.values()})
             for s in shards:
                 if not s.is_file():
@@ -216,7 +269,7 @@ def open_source(path: str | os.PathLike) -> TensorSource:
         raise CompressError(f"{path}: no weights found; expected model.safetensors, sharded safetensors with "
                             "model.safetensors.index.json, or pytorch_model.bin")
     if not os.access(path, os.R_OK):
-        raise CompressError(f"{path}: not readable (permission denied)")
+        raise CompressError(f"{path}: not readable (permission denied); check its permissions")
     suffix = path.suffix.lower()
     if suffix == ".safetensors":
         return SafetensorsSource(path, [path], None)

@@ -1,0 +1,408 @@
+"""Two models side by side: size, KV cache, quality on the same text, and speed measured in one process.
+
+`compare(a, b, ...)` is the API of `attncompress compare`. The speed figures come
+from `time_decoders` / `time_encoders`, which run A and B interleaved in the same
+process (so load on a shared machine hits both alike) and keep the median of
+several runs, and from `measure_bandwidth`, the machine's streaming read rate,
+which bounds a decode step from below: every weight is read once per token.
+"""
+from __future__ import annotations
+
+import math
+import statistics
+import time
+from contextlib import contextmanager
+from dataclasses import dataclass
+from pathlib import Path
+
+import torch
+import torch.nn.functional as F
+
+from . import evaluate
+from .errors import CompressError
+from .io.load import Loaded, load_weights
+from .model import KVCache, Transformer, build
+from .models import resolve
+from .texts import read_lines, read_texts
+
+SCHEMA = "attncompress.compare/1"
+PROMPT_TOKENS = 256  # prompt length of the prefill measurement
+DECODE_TOKENS = 16  # single-token steps timed per run after the prompt
+BATCH_LINES = 32  # sentences per encoder batch
+RUNS = 5
+
+
+@dataclass
+class _Model:
+    """A loaded model with its counts (see `model_facts`)."""
+    loaded: Loaded
+    facts: dict
+    label: str
+
+
+def _open(path: str, label: str) -> _Model:
+    """Load a model the way `load_model` does, counting from the canonical weights before they are dropped."""
+    shape, weights, source, walk, manifest = load_weights(resolve(path))
+    model = build(shape, weights)
+    model.eval()
+    loaded = Loaded(model, shape, source.tokenizer(), source, walk, manifest)
+    return _Model(loaded, model_facts(loaded, weights), label)
+
+
+# ----------------------------------------------------------------------------------------------- sizes
+
+def model_facts(ld: Loaded, weights: dict) -> dict:
+    """Counts of one model: parameters, bytes of its weight files, KV-cache bytes per token, the plan."""
+    from .api import kv_bytes_per_token
+    files = [{"name": f.name, "bytes": f.stat().st_size} for f in ld.source.files]
+    quantised = ld.source.format == "gguf" and any(dt not in ("F32", "F16", "BF16", "F64")
+                                                     for dt in ld.source.dtypes())
+    groups = evaluate.param_groups(weights)
+    plan = (ld.manifest or {}).get("plan")
+    return {
+        "path": str(ld.path),
+        "format": "attncompress" if ld.manifest else ld.source.format,
+        "family": ld.shape.family,
+        "compressed": ld.manifest is not None,
+        "parameters": {"total": groups["total"], "block_matrices": evaluate.block_matrix_params(weights),
+                       "groups": groups},
+        "disk": {"bytes": sum(f["bytes"] for f in files), "files": files, "quantised": quantised,
+                 "dtypes": ld.source.dtypes(),
+                 "note": ("quantised on disk; dequantised to float32 to run, so disk bytes understate memory"
+                          if quantised else None)},
+        "runtime_bytes": sum(p.numel() * p.element_size() for p in ld.model.parameters()),
+        "kv_bytes_per_token": kv_bytes_per_token(ld.shape, weights) if ld.model.is_decoder else None,
+        "plan": None if plan is None else {"strategy": plan.get("strategy"), "keep": plan.get("keep"),
+                                            "layers": plan.get("layers")},
+        "method": (ld.manifest or {}).get("method"),
+    }
+
+
+def _ratio(b, a):
+    """b / a, or None when either is missing or a is zero."""
+    return None if a in (None, 0) or b is None else b / a
+
+
+# --------------------------------------------------------------------------------------------- quality
+
+def _same_tokens(a: _Model, b: _Model, text: str) -> tuple[list[int], str]:
+    """Token ids of `text` that both models read, and how the tokenizers were checked.
+
+    Raises CompressError when the tokenizers split the text differently or neither model has one.
+    """
+    ta, tb = a.loaded.tokenizer, b.loaded.tokenizer
+    if ta is None and tb is None:
+        raise CompressError(f"{a.loaded.path} and {b.loaded.path}: neither has a tokenizer.json; "
+                            "put the source model's tokenizer.json beside the weights to score text")
+    if ta is None or tb is None:
+        have = a if ta is not None else b
+        return have.loaded.tokenizer.encode(text).ids, f"only {have.label} has a tokenizer; used for both"
+    ids_a, ids_b = ta.encode(text).ids, tb.encode(text).ids
+    if ids_a != ids_b:
+        at = next((i for i, (x, y) in enumerate(zip(ids_a, ids_b)) if x != y), min(len(ids_a), len(ids_b)))
+        raise CompressError(f"{a.loaded.path} and {b.loaded.path}: the tokenizers split the text differently "
+                            f"(first difference at token {at}); compare models that share one tokenizer")
+    return ids_a, "identical on the text"
+
+
+def perplexities(a: _Model, b: _Model, texts: list[str], context: int, stride: int | None,
+                 max_tokens: int | None, quiet: bool) -> dict:
+    """Perplexity of both decoders on the same token stream, and B's over A's."""
+    text, described = read_texts(texts)
+    ids, tok_note = _same_tokens(a, b, text)
+    if max_tokens:
+        ids = ids[:max_tokens]
+    ctx = min(context, a.loaded.shape.max_positions or context, b.loaded.shape.max_positions or context)
+    pa = evaluate.perplexity(a.loaded.model, ids, context=ctx, stride=stride, quiet=quiet, label="perplexity A")
+    pb = evaluate.perplexity(b.loaded.model, ids, context=ctx, stride=stride, quiet=quiet, label="perplexity B")
+    return {"kind": "perplexity", "texts": described, "tokenizer": tok_note, "tokens": pa["tokens"],
+            "context": pa["context"], "stride": pa["stride"], "a": pa["perplexity"], "b": pb["perplexity"],
+            "nll_a": pa["nll"], "nll_b": pb["nll"], "ratio": pb["perplexity"] / pa["perplexity"]}
+
+
+def embedding_agreement(ea: torch.Tensor, eb: torch.Tensor) -> dict:
+    """Cosine of the two models' embeddings of each line, and how often the top-1 neighbour is unchanged.
+
+    Args:
+        ea, eb: (n_lines, d_a), (n_lines, d_b) mean-pooled embeddings of the same lines (d_a == d_b).
+    Returns:
+        {"cosine": {"mean", "p5", "min"}, "neighbour_agreement"}: cosine per line of ea[i] and eb[i];
+        neighbour_agreement is the fraction of lines whose most similar other line (by cosine) is the same
+        under both models. Example: identical embeddings → cosine 1, agreement 1.
+    Raises:
+        CompressError: fewer than 2 lines.
+    """
+    n = ea.shape[0]
+    if n < 2:
+        raise CompressError(f"embedding agreement needs at least 2 lines of text, got {n}; give more lines")
+    a, b = F.normalize(ea.double(), dim=1), F.normalize(eb.double(), dim=1)  # (n, d), unit rows
+    cos = (a * b).sum(1)  # (n,)
+    sa, sb = a @ a.T, b @ b.T  # (n, d) @ (d, n) → (n, n) similarities within each model
+    eye = torch.eye(n, dtype=torch.bool)
+    sa, sb = sa.masked_fill(eye, -math.inf), sb.masked_fill(eye, -math.inf)  # a line is not its own neighbour
+    agree = (sa.argmax(1) == sb.argmax(1)).double().mean()
+    return {"cosine": {"mean": float(cos.mean()), "p5": float(torch.quantile(cos, 0.05)), "min": float(cos.min())},
+            "neighbour_agreement": float(agree)}
+
+
+def _lines_of(texts: list[str] | None, lines: list[str] | None) -> tuple[list[str], list[dict]]:
+    """Sentences for an encoder: the given lines, else every non-empty line of the text files."""
+    if lines is not None:
+        return [ln for ln in lines if ln.strip()], []
+    out = []
+    for t in texts:
+        out.extend(read_lines(t))
+    _, described = read_texts(texts)
+    return out, described
+
+
+def embeddings(a: _Model, b: _Model, sentences: list[str], described: list[dict]) -> dict:
+    """Agreement of two encoders' mean-pooled embeddings of the same sentences."""
+    joined = "\n".join(sentences)
+    _, tok_note = _same_tokens(a, b, joined)
+    tok = a.loaded.tokenizer or b.loaded.tokenizer
+    ea = evaluate.embed(a.loaded.model, tok, sentences)
+    eb = evaluate.embed(b.loaded.model, tok, sentences)
+    if ea.shape[1] != eb.shape[1]:
+        raise CompressError(f"{a.loaded.path} and {b.loaded.path}: embedding widths differ "
+                            f"({ea.shape[1]} vs {eb.shape[1]}); compare a model with its own compressed version")
+    return {"kind": "embedding", "texts": described, "tokenizer": tok_note, "lines": len(sentences),
+            **embedding_agreement(ea, eb)}
+
+
+# ----------------------------------------------------------------------------------------------- speed
+
+@contextmanager
+def _threads(n: int | None):
+    """Run with `n` intra-op threads, restoring the previous count after."""
+    old = torch.get_num_threads()
+    if n:
+        torch.set_num_threads(n)
+    try:
+        yield torch.get_num_threads()
+    finally:
+        torch.set_num_threads(old)
+
+
+def measure_bandwidth(megabytes: int = 256, runs: int = 5, buffer: torch.Tensor | None = None) -> float:
+    """Streaming read bandwidth in bytes per second: the median time to sum a float32 tensor much larger than caches.
+
+    Args:
+        megabytes: size of the tensor read (keep it well above the last-level cache); ignored with `buffer`.
+        runs: timed sums after one untimed one.
+        buffer: a float32 tensor to read instead of allocating one (to sample repeatedly).
+    Returns:
+        bytes / second.
+    """
+    x = buffer if buffer is not None else torch.ones(megabytes * (1 << 20) // 4)  # (n,) float32, pages mapped
+    x.sum()
+    ts = []
+    for _ in range(runs):
+        t0 = time.perf_counter()
+        x.sum()
+        ts.append(time.perf_counter() - t0)
+    return x.numel() * x.element_size() / statistics.median(ts)
+
+
+def decode_bytes(model: Transformer, cached: int) -> int:
+    """Bytes one decode step must read: every weight once, plus the keys and values of `cached` positions.
+
+    The token (and position) tables are read one row per step, except a tied table that is also the output
+    head, which is read whole.
+    """
+    n = sum(p.numel() * p.element_size() for name, p in model.named_parameters()
+            if name not in ("tokens", "positions", "types"))
+    if model.is_decoder and model.lm_head is None:
+        n += model.tokens.numel() * model.tokens.element_size()  # the tied output head
+    kv = sum(blk.attn.n_kv_heads * (blk.attn.w_qk + blk.attn.w_vo) for blk in model.blocks) * 4  # float32 cache
+    return n + kv * cached
+
+
+def prefill(model: Transformer, ids: torch.Tensor, cache: KVCache) -> torch.Tensor:
+    """Process a prompt into the cache and return the logits of its last position only: (b, 1, vocab)."""
+    x = model.hidden(ids, cache=cache, start=0)  # (b, s, d)
+    return model.logits(x[:, -1:])  # generation needs only the next token's distribution
+
+
+def _time(fn) -> float:
+    """Seconds one call of fn takes."""
+    t0 = time.perf_counter()
+    fn()
+    return time.perf_counter() - t0
+
+
+def time_decoders(models: list[Transformer], runs: int = RUNS, prompt_tokens: int = PROMPT_TOKENS,
+                  decode_tokens: int = DECODE_TOKENS, seed: int = 0, probe=None) -> dict:
+    """Prompt (1×prompt_tokens) and per-token decode time of each model, finely interleaved, per run.
+
+    A run prefills a fresh cache per model with the same prompt (timed as "prompt"), then feeds
+    `decode_tokens` single tokens, alternating the models step by step so that a change in the machine's
+    load hits all of them alike; a model's "decode" time of the run is the mean of its steps. The order of
+    the models alternates from run to run. `probe()`, when given, runs once per run (e.g. a bandwidth sample)
+    and its return values are collected. Times in seconds: {"prompt": [[per run] per model], "decode": [...],
+    "probe": [...], "prompt_tokens", "decode_tokens"}.
+    """
+    vocab = min(m.shape.vocab_size for m in models)
+    limit = min((m.shape.max_positions or 1 << 30) for m in models)
+    prompt_tokens = max(1, min(prompt_tokens, limit - decode_tokens))
+    g = torch.Generator().manual_seed(seed)
+    ids = torch.randint(0, vocab, (1, prompt_tokens + decode_tokens), generator=g)  # (1, s) the same for all
+    out = {"prompt": [[] for _ in models], "decode": [[] for _ in models], "probe": []}
+
+    def run(order: list[int], record: bool):
+        caches = {j: KVCache(models[j], 1, prompt_tokens + decode_tokens) for j in order}
+        for j in order:
+            tp = _time(lambda: prefill(models[j], ids[:, :prompt_tokens], caches[j]))
+            if record:
+                out["prompt"][j].append(tp)
+        steps = {j: 0.0 for j in order}
+        for i in range(prompt_tokens, prompt_tokens + decode_tokens):
+            for j in order:
+                steps[j] += _time(lambda: models[j](ids[:, i:i + 1], cache=caches[j], start=i))  # (1, 1, vocab)
+        if record:
+            for j in order:
+                out["decode"][j].append(steps[j] / decode_tokens)
+
+    with torch.inference_mode():
+        run(list(range(len(models))), record=False)  # warm-up: allocator, kernels, rotary tables, page faults
+        for r in range(runs):
+            order = list(range(len(models)))
+            run(order if r % 2 == 0 else order[::-1], record=True)
+            if probe is not None:
+                out["probe"].append(probe())
+    return {**out, "prompt_tokens": prompt_tokens, "decode_tokens": decode_tokens}
+
+
+def time_encoders(models: list[Transformer], ids: torch.Tensor, mask: torch.Tensor, runs: int = RUNS) -> dict:
+    """Forward time of each encoder on one batch (ids, mask: (b, s)), interleaved, per run. Returns {"batch": [...]}."""
+    out = [[] for _ in models]
+    with torch.inference_mode():
+        for m in models:
+            m(ids, attention_mask=mask)  # warm-up
+        for r in range(runs):
+            order = range(len(models)) if r % 2 == 0 else reversed(range(len(models)))
+            for j in order:
+                out[j].append(_time(lambda: models[j](ids, attention_mask=mask)))
+    return {"batch": out}
+
+
+def _side(times: list[list[float]]) -> dict:
+    """Median milliseconds of A and B and speedup = time A / time B, with the raw runs."""
+    a, b = statistics.median(times[0]) * 1e3, statistics.median(times[1]) * 1e3
+    return {"a_ms": a, "b_ms": b, "speedup": a / b,
+            "a_runs_ms": [t * 1e3 for t in times[0]], "b_runs_ms": [t * 1e3 for t in times[1]]}
+
+
+def speed(a: _Model, b: _Model, runs: int = RUNS, threads: int | None = None,
+          sentences: list[str] | None = None, bandwidth: bool = True) -> dict:
+    """The speed section of the comparison (see `compare` for the keys)."""
+    ma, mb = a.loaded.model, b.loaded.model
+    with _threads(threads) as n_threads:
+        out = {"threads": n_threads, "runs": runs}
+        if ma.is_decoder:
+            buf = torch.ones(256 << 18) if bandwidth else None  # 256 MB of float32, far above any cache
+            t = time_decoders([ma, mb], runs=runs, probe=(lambda: measure_bandwidth(runs=3, buffer=buf)) if bandwidth else None)
+            del buf
+            out["prompt"] = {"tokens": t["prompt_tokens"], **_side(t["prompt"])}
+            dec = {"cached_tokens": t["prompt_tokens"], "tokens_per_run": t["decode_tokens"], **_side(t["decode"])}
+            if bandwidth:
+                bw = statistics.median(t["probe"])  # sampled once per run, under the same load as the timings
+                out["bandwidth_gb_s"] = bw / 1e9
+                mid = t["prompt_tokens"] + t["decode_tokens"] // 2  # mean cache length during the timed steps
+                for side, m in (("a", ma), ("b", mb)):
+                    nbytes = decode_bytes(m, mid)
+                    dec[f"{side}_bytes"] = nbytes
+                    dec[f"{side}_limit_ms"] = nbytes / bw * 1e3
+                    dec[f"{side}_over_limit"] = dec[f"{side}_ms"] / dec[f"{side}_limit_ms"]
+                dec["limit_speedup"] = dec["a_bytes"] / dec["b_bytes"]
+            out["decode"] = dec
+        else:
+            tok = a.loaded.tokenizer or b.loaded.tokenizer
+            if sentences and tok is not None:
+                batch = [sentences[i % len(sentences)] for i in range(BATCH_LINES)]
+                ids, mask = evaluate.encode_batch(tok, batch, ma.shape.max_positions or 512)
+            else:  # no text: a fixed random batch of 64-token sentences
+                g = torch.Generator().manual_seed(0)
+                s = min(64, ma.shape.max_positions or 64)
+                ids = torch.randint(0, min(ma.shape.vocab_size, mb.shape.vocab_size), (BATCH_LINES, s), generator=g)
+                mask = torch.ones_like(ids)
+            t = time_encoders([ma, mb], ids, mask, runs=runs)
+            out["batch"] = {"sentences": ids.shape[0], "tokens": int(mask.sum()), **_side(t["batch"])}
+    return out
+
+
+# ---------------------------------------------------------------------------------------------- compare
+
+def compare(a: str, b: str, texts: list[str] | None = None, lines: list[str] | None = None, *,
+            context: int = 512, stride: int | None = None, max_tokens: int | None = None,
+            speed_runs: int | None = RUNS, threads: int | None = None, quiet: bool = True) -> dict:
+    """Compare two models (an original and its compressed or tuned version, or any two the tool reads).
+
+    Args:
+        a, b: model paths (directory, .safetensors, .gguf, compressed directory, or builtin:NAME).
+        texts: UTF-8 text files. Decoders: perplexity of the joined text; encoders: one sentence per line.
+        lines: sentences for encoders, instead of `texts`.
+        context, stride, max_tokens: perplexity windows (see `evaluate.perplexity`) and a cap on scored tokens.
+        speed_runs: timed runs per speed figure (median reported); None or 0 skips the speed section.
+        threads: intra-op threads for the speed section (default: torch's current setting).
+        quiet: no progress lines.
+
+    Returns:
+        A JSON-ready dict, schema "attncompress.compare/1":
+
+        - "schema": "attncompress.compare/1"
+        - "a", "b": one model each: "path", "format" ("attncompress" for a compressed directory, else
+          "safetensors" / "gguf" / "torch"), "family", "compressed" (bool),
+          "parameters": {"total", "block_matrices", "groups": {embeddings, attention, feed-forward, norms,
+          other, total}} (floating-point tensors of the canonical weights; block matrices are the q, k, v, o and
+          feed-forward weights or factors, no biases),
+          "disk": {"bytes" (sum of the weight files), "files": [{"name", "bytes"}], "quantised" (bool: a
+          quantised GGUF), "dtypes": {stored dtype: tensor count}, "note" (str or null)},
+          "runtime_bytes" (float32 parameters in memory), "kv_bytes_per_token" (int; null for encoders),
+          "plan" ({"strategy", "keep", "layers": [{"layer", "qk", "vo", "ff": {kind: rank|null}, "qk_pairs"}]}
+          from the manifest, or null), "method" (manifest's method or null).
+        - "ratios": B over A for "parameters", "block_matrices", "disk_bytes", "runtime_bytes",
+          "kv_bytes_per_token" (null for encoders).
+        - "quality": null without text; decoders: {"kind": "perplexity", "texts": [{"name", "bytes", "sha256",
+          "lines"}], "tokenizer" (how the token ids were checked), "tokens", "context", "stride", "a", "b"
+          (perplexities), "nll_a", "nll_b" (nats per token), "ratio" (b / a)}; encoders: {"kind": "embedding",
+          "texts", "tokenizer", "lines", "cosine": {"mean", "p5", "min"}, "neighbour_agreement"}.
+        - "speed": null when skipped; else {"threads", "runs"} and for decoders
+          "prompt": {"tokens", "a_ms", "b_ms", "speedup", "a_runs_ms", "b_runs_ms"} (prefill of 1×tokens,
+          last-position logits), "decode": {"cached_tokens", "tokens_per_run", "a_ms", "b_ms" (per token),
+          "speedup", "a_runs_ms", "b_runs_ms", "a_bytes", "b_bytes" (bytes read per step), "a_limit_ms",
+          "b_limit_ms" (bytes / bandwidth), "a_over_limit", "b_over_limit" (time / limit), "limit_speedup"},
+          "bandwidth_gb_s" (measured streaming read, 1e9 bytes/s); for encoders "batch": {"sentences", "tokens",
+          "a_ms", "b_ms", "speedup", "a_runs_ms", "b_runs_ms"}. Every "speedup" is time of A / time of B.
+
+    Raises:
+        CompressError: unreadable models; a decoder against an encoder; different vocabularies or tokenizers
+            that split the text differently; unreadable text.
+    """
+    ma, mb = _open(a, "A"), _open(b, "B")
+    sa, sb = ma.loaded.shape, mb.loaded.shape
+    if ma.loaded.model.is_decoder != mb.loaded.model.is_decoder:
+        raise CompressError(f"{a} and {b}: one is a decoder and the other an encoder; compare like with like")
+    if sa.vocab_size != sb.vocab_size:
+        raise CompressError(f"{a} and {b}: vocabularies differ ({sa.vocab_size} vs {sb.vocab_size} tokens); "
+                            "compare a model with its own compressed version")
+    fa, fb = ma.facts, mb.facts
+    report = {
+        "schema": SCHEMA, "a": fa, "b": fb,
+        "ratios": {"parameters": _ratio(fb["parameters"]["total"], fa["parameters"]["total"]),
+                   "block_matrices": _ratio(fb["parameters"]["block_matrices"], fa["parameters"]["block_matrices"]),
+                   "disk_bytes": _ratio(fb["disk"]["bytes"], fa["disk"]["bytes"]),
+                   "runtime_bytes": _ratio(fb["runtime_bytes"], fa["runtime_bytes"]),
+                   "kv_bytes_per_token": _ratio(fb["kv_bytes_per_token"], fa["kv_bytes_per_token"])},
+        "quality": None, "speed": None,
+    }
+    sentences = None
+    if ma.loaded.model.is_decoder:
+        if texts:
+            report["quality"] = perplexities(ma, mb, list(texts), context, stride, max_tokens, quiet)
+    elif texts or lines:
+        sentences, described = _lines_of(list(texts) if texts else None, lines)
+        report["quality"] = embeddings(ma, mb, sentences, described)
+    if speed_runs:
+        report["speed"] = speed(ma, mb, runs=speed_runs, threads=threads, sentences=sentences)
+    return report

@@ -1,0 +1,745 @@
+"""The calibration fine-tune: a short AdamW run over the factors of a compressed model.
+
+Shape legend: b blocks in a batch, s tokens per block (context), V vocabulary, k cached teacher tokens,
+d d_model, h query heads, g key/value groups, w_qk / w_vo per-head widths, r a factor rank.
+
+What trains. Every factor tensor: the two thin matrices `a: (d_out, r)` and `bt: (r, d_in)` of each
+factorised feed-forward matrix, and the narrowed query/key/value/output projections, which are the
+attention factors (W_q^h, W_k^g of each query-key form, W_v^g, W_o^h of each value-output map). With
+`train_norms` also the norm weights (and LayerNorm biases); with `train_dense` also the feed-forward
+matrices the plan left dense. Embeddings, the output head and projection biases stay frozen.
+
+Loss per block of `context` tokens:
+
+    mix · CE(next token) + (1 − mix) · T² · KL(teacher_T ‖ student_T)  [+ penalty]
+
+with both distributions softened by the temperature T; the T² keeps the soft-target gradients on the scale
+of the hard ones (Hinton, Vinyals and Dean 2015, "Distilling the knowledge in a neural network"). The
+default mix 0.5 weighs both terms equally; T = 1 keeps the teacher's own distribution. CE scores the s − 1
+next tokens of a block, KL all s positions. Without a teacher the loss is CE alone.
+
+Teacher cache. Full teacher logits cost V·s·4 bytes a block (25 MB for SmolLM2 at 128 tokens), so each
+block keeps only its top-k teacher log-probabilities and their token ids (k = 64: 64 KiB a block at
+s = 128), computed once, on its own (batch 1, so a cached and a recomputed block give the same bits). The KL
+is then taken between the coarsened distributions over those k tokens plus one bin for the rest of the
+vocabulary: exact when k ≥ V, otherwise a lower bound of the full KL (coarsening never increases a KL
+divergence, the data-processing inequality). When the blocks a run touches would need more than
+`CACHE_BYTES`, nothing is cached and the teacher runs every step.
+
+Penalty (`decay`):
+    "frobenius": λ Σ ‖A Bᵀ‖_F² over every factor pair, as tr((AᵀA)(BᵀB)) — the product is never formed.
+        The pairs: each factorised feed-forward matrix (a, b); for each query head h of group g the
+        query-key form W_q^hᵀ W_k^g (d × d; with rotary embeddings the form at position offset zero — the
+        rotation R(Δ) between the factors is ignored) and the value-output map W_o^h W_v^g (d × d). A dense
+        feed-forward matrix W trained with `train_dense` is the pair (W, I): λ‖W‖_F². Biases are not
+        penalised. AdamW's own weight decay is zero.
+    "factor": AdamW's decoupled weight decay λ on every factor tensor (and trained dense matrix; not on norms).
+    "none": neither.
+  The penalty costs (m + n)·r² per pair and step, which at the ranks a 0.7 budget keeps is a sizeable
+  fraction of a forward-backward pass of a few hundred tokens. So it is evaluated every `penalty_every`
+  steps with weight penalty_every · λ ("lazy regularisation", Karras et al. 2020, StyleGAN2 §3.1): the sum
+  of its gradients over any penalty_every steps is unchanged, its cost is divided by penalty_every, and its
+  gradient is formed in closed form, 2λA(BᵀB) and 2λB(AᵀA), rather than by autograd through the Gram matrices.
+
+Schedule. Linear warm-up over the first `WARMUP_FRACTION` of the steps, then cosine decay to
+`LR_FLOOR` × lr at the end (both common practice, no source).
+
+Data. The text is cut into non-overlapping blocks; the blocks are visited in an endless stream of seeded
+permutations (one per epoch), step t taking stream positions [t·batch, (t + 1)·batch). The data position
+is therefore the step, and the order depends only on the seed and the number of blocks.
+
+Checkpoints go to a sibling file of the output, `.{out}.tune-checkpoint.pt` (trained tensors, AdamW state,
+step, RNG state, loss curve, held-out perplexities at the start), written to a temporary file and renamed,
+so an interrupted run always leaves the last complete one. `resume` checks that the settings, data, model
+and teacher are the ones that wrote it, and continues bit for bit as the uninterrupted run would (for the
+same number of processes). The checkpoint is removed once the output directory is written.
+
+Distributed. With WORLD_SIZE > 1 in the environment (torchrun), each process joins a gloo process group,
+takes a contiguous slice of batch / WORLD_SIZE blocks of every global batch, and DistributedDataParallel
+averages the gradients, so the update is that of the global batch on one process up to float rounding.
+Rank 0 evaluates, checkpoints and writes; the others wait at a barrier.
+"""
+from __future__ import annotations
+
+import copy
+import hashlib
+import json
+import math
+import os
+import sys
+import time
+from dataclasses import asdict, dataclass
+from pathlib import Path
+
+import torch
+import torch.nn.functional as F
+
+from . import evaluate
+from .errors import CompressError
+from .io.load import is_compressed, load_model, read_manifest, tokens
+from .model import LayerNorm, Linear, LowRankLinear, Transformer
+from .models import BUILTIN, resolve
+from .progress import Progress
+from .texts import read_texts, token_blocks
+
+DECAYS = ("frobenius", "factor", "none")
+DEFAULT_DECAY_COEF = 0.01  # the usual AdamW weight-decay value (common practice, no source)
+DEFAULT_MIX = 0.5
+DEFAULT_TEMPERATURE = 1.0
+DEFAULT_TOPK = 64
+DEFAULT_PENALTY_EVERY = 4
+WARMUP_FRACTION = 0.1
+LR_FLOOR = 0.1
+CACHE_BYTES = 2 << 30  # teacher top-k cache limit per process
+CHECKPOINT_FORMAT = 1
+
+
+class TuneInterrupted(KeyboardInterrupt):
+    """Ctrl-C during a tune; the message says which checkpoint is left and how to continue."""
+
+
+@dataclass(frozen=True)
+class TuneSettings:
+    """Everything that fixes the result of a tune (with the model, the data and the teacher)."""
+    steps: int
+    batch: int  # global: blocks per optimiser step over all processes
+    context: int
+    lr: float
+    seed: int
+    decay: str
+    decay_coef: float
+    penalty_every: int
+    temperature: float
+    mix: float  # weight of the next-token loss; 1.0 when there is no teacher
+    topk: int
+    train_norms: bool
+    train_dense: bool
+    warmup: int
+
+    def to_json(self) -> dict:
+        return asdict(self)
+
+
+# --------------------------------------------------------------------------------------------- the maths
+
+class _PairSqNorm(torch.autograd.Function):
+    """‖A Bᵀ‖_F² = Σ (AᵀA) ∘ (BᵀB) with the closed-form gradient 2A(BᵀB), 2B(AᵀA)."""
+
+    @staticmethod
+    def forward(ctx, a, b):
+        ga, gb = a.T @ a, b.T @ b  # (r, d_out) @ (d_out, r), (r, d_in) @ (d_in, r) → (r, r) each
+        ctx.save_for_backward(a, b, ga, gb)
+        return (ga * gb).sum()  # both Gram matrices are symmetric, so this is tr(ga gb)
+
+    @staticmethod
+    def backward(ctx, grad):
+        a, b, ga, gb = ctx.saved_tensors
+        # one (m, r) @ (r, r) product per factor instead of autograd's two through each Gram matrix
+        return (2 * grad) * (a @ gb), (2 * grad) * (b @ ga)
+
+
+def pair_sq_norm(a: torch.Tensor, b: torch.Tensor) -> torch.Tensor:
+    """‖A Bᵀ‖_F² without the product, differentiable (same value as `factorize.product_sq_norm`).
+
+    Args:
+        a: (m, r).
+        b: (n, r).
+
+    Returns:
+        scalar tensor in a's dtype.
+    """
+    assert a.dim() == 2 and b.dim() == 2 and a.shape[1] == b.shape[1]
+    return _PairSqNorm.apply(a, b)
+
+
+def _head_grams(w: torch.Tensor, heads: int, rows: bool) -> torch.Tensor:
+    """Per-head Gram matrices of a projection: rows=True splits (heads·w, d) by rows, else (d, heads·w) by columns."""
+    if rows:
+        x = w.view(heads, -1, w.shape[1])  # (heads, w, d)
+    else:
+        x = w.view(w.shape[0], heads, -1).transpose(0, 1)  # (heads, d, w) → per head W^hᵀ is (w, d)
+        x = x.transpose(1, 2)  # (heads, w, d)
+    return x @ x.transpose(1, 2)  # (heads, w, d) @ (heads, d, w) → (heads, w, w)
+
+
+def attention_pair_sq_norm(q: torch.Tensor, k: torch.Tensor, v: torch.Tensor, o: torch.Tensor,
+                           n_heads: int, n_kv_heads: int) -> torch.Tensor:
+    """Σ_h ‖W_q^hᵀ W_k^g‖_F² + ‖W_o^h W_v^g‖_F² over query heads h of group g, without any d × d product.
+
+    ‖W_q^hᵀ W_k^g‖² = tr((W_q^h W_q^hᵀ)(W_k^g W_k^gᵀ)) and ‖W_o^h W_v^g‖² = tr((W_o^hᵀ W_o^h)(W_v^g W_v^gᵀ)),
+    each a sum of the elementwise product of two small symmetric Gram matrices.
+
+    Args:
+        q: (h·w_qk, d), k: (g·w_qk, d), v: (g·w_vo, d), o: (d, h·w_vo) projection weights.
+        n_heads, n_kv_heads: h and g.
+
+    Returns:
+        scalar tensor in q's dtype.
+    """
+    rep = n_heads // n_kv_heads
+    gq, gk = _head_grams(q, n_heads, True), _head_grams(k, n_kv_heads, True)  # (h, w_qk, w_qk), (g, w_qk, w_qk)
+    gv, go = _head_grams(v, n_kv_heads, True), _head_grams(o, n_heads, False)  # (g, w_vo, w_vo), (h, w_vo, w_vo)
+    # query head j belongs to group j // rep, as in the forward pass
+    qk = (gq * gk.repeat_interleave(rep, 0)).sum()
+    vo = (go * gv.repeat_interleave(rep, 0)).sum()
+    return qk + vo
+
+
+def frobenius_penalty(model: Transformer, dense: bool = False) -> torch.Tensor:
+    """Σ ‖A Bᵀ‖_F² over every factor pair of the model (see the module docstring for the pairs).
+
+    Args:
+        model: the runtime.
+        dense: also Σ ‖W‖_F² over the dense feed-forward matrices (trained with `train_dense`).
+
+    Returns:
+        scalar tensor, differentiable with respect to the factor tensors.
+    """
+    total = torch.zeros((), dtype=model.tokens.dtype)
+    for blk in model.blocks:
+        a = blk.attn
+        if all(isinstance(m, Linear) for m in (a.q, a.k, a.v, a.o)):
+            total = total + attention_pair_sq_norm(a.q.weight, a.k.weight, a.v.weight, a.o.weight,
+                                                   a.n_heads, a.n_kv_heads)
+        for kind in ("gate", "up", "down"):
+            lin = getattr(blk.ff, kind, None)
+            if isinstance(lin, LowRankLinear):
+                total = total + pair_sq_norm(lin.a, lin.bt.T)  # a: (d_out, r), b = btᵀ: (d_in, r)
+            elif dense and isinstance(lin, Linear):
+                total = total + lin.weight.pow(2).sum()
+    return total
+
+
+def teacher_targets(logits: torch.Tensor, k: int, temperature: float) -> tuple[torch.Tensor, torch.Tensor]:
+    """The top-k teacher log-probabilities at a temperature and their token ids.
+
+    Args:
+        logits: (s, V) teacher logits of one block.
+        k: tokens kept per position (clipped to V).
+        temperature: T > 0.
+
+    Returns:
+        (logp, ids): (s, k) float32 log-probabilities of softmax(logits / T), descending, and (s, k) int64 ids.
+    """
+    logp = F.log_softmax(logits.float() / temperature, dim=-1)  # (s, V)
+    top = torch.topk(logp, min(k, logp.shape[-1]), dim=-1)  # ties: torch's order, deterministic on CPU
+    return top.values, top.indices
+
+
+def distill_kl(student: torch.Tensor, logp: torch.Tensor, ids: torch.Tensor, temperature: float) -> torch.Tensor:
+    """Mean KL(teacher ‖ student) per position over the top-k tokens plus one bin for the rest, times T².
+
+    Args:
+        student: (n, V) student logits.
+        logp: (n, k) teacher log-probabilities at temperature T (from `teacher_targets`).
+        ids: (n, k) their token ids.
+        temperature: T.
+
+    Returns:
+        scalar tensor; the exact T²·KL when k = V.
+    """
+    lq = F.log_softmax(student.float() / temperature, dim=-1)  # (n, V)
+    lq_top = lq.gather(1, ids)  # (n, k)
+    p_top = logp.exp()
+    kl_top = (p_top * (logp - lq_top)).sum(-1)  # (n,)
+    # the tail bin: mass outside the k tokens, 1 − Σ p; log(1 − e^x) = log(−expm1(x)) stays accurate near x = 0
+    lp_tail = torch.log((-torch.expm1(torch.logsumexp(logp, -1))).clamp_min(1e-30))  # (n,)
+    lq_tail = torch.log((-torch.expm1(torch.logsumexp(lq_top, -1))).clamp_min(1e-30))  # (n,)
+    p_tail = lp_tail.exp()
+    # a tail below float32 resolution contributes nothing (0 · log 0 = 0)
+    kl_tail = torch.where(p_tail > 1e-20, p_tail * (lp_tail - lq_tail), torch.zeros_like(p_tail))
+    return (kl_top + kl_tail).mean() * temperature ** 2
+
+
+def lr_multiplier(step: int, steps: int, warmup: int, floor: float = LR_FLOOR) -> float:
+    """Learning-rate factor for update `step` (0-based): linear warm-up, then cosine from 1 down towards `floor`.
+
+    Example: steps=10, warmup=2 → 0.5, 1.0, 1.0, 0.96, ..., 0.14 (step 9).
+    """
+    if step < warmup:
+        return (step + 1) / warmup
+    progress = (step - warmup) / max(1, steps - warmup)  # in [0, 1): the last step stays above the floor
+    return floor + (1 - floor) * 0.5 * (1 + math.cos(math.pi * progress))
+
+
+def block_order(n_blocks: int, seed: int, start: int, count: int) -> torch.Tensor:
+    """Block indices at positions start..start+count-1 of the stream of seeded permutations, one per epoch.
+
+    Example: n_blocks=3, count=6 → every block twice, once in each of two different orders.
+    """
+    g = torch.Generator().manual_seed(seed)
+    first, last = start // n_blocks, (start + count - 1) // n_blocks
+    perms = [torch.randperm(n_blocks, generator=g) for _ in range(last + 1)]  # epochs 0..last, always from 0
+    stream = torch.cat(perms[first:])
+    off = start - first * n_blocks
+    return stream[off:off + count]
+
+
+# ------------------------------------------------------------------------------------- model bookkeeping
+
+def _linear_params(name: str, lin) -> list[tuple[str, torch.nn.Parameter, bool]]:
+    """(canonical name, parameter, stored transposed) of one projection's weight or factors."""
+    if isinstance(lin, LowRankLinear):
+        return [(name + ".a", lin.a, False), (name + ".b", lin.bt, True)]
+    return [(name + ".weight", lin.weight, False)]
+
+
+def factor_params(model: Transformer) -> list[tuple[str, torch.nn.Parameter, bool]]:
+    """Every factor tensor: attention projections and factorised feed-forward matrices, with canonical names."""
+    out = []
+    for i, blk in enumerate(model.blocks):
+        p = f"layers.{i}."
+        for m in "qkvo":
+            out += _linear_params(p + f"attn.{m}", getattr(blk.attn, m))
+        for kind in ("gate", "up", "down"):
+            lin = getattr(blk.ff, kind, None)
+            if isinstance(lin, LowRankLinear):
+                out += _linear_params(p + f"ff.{kind}", lin)
+    return out
+
+
+def dense_ff_params(model: Transformer) -> list[tuple[str, torch.nn.Parameter, bool]]:
+    """The feed-forward matrices the plan left dense, with canonical names."""
+    return [(f"layers.{i}.ff.{kind}.weight", lin.weight, False) for i, blk in enumerate(model.blocks)
+            for kind in ("gate", "up", "down") if isinstance(lin := getattr(blk.ff, kind, None), Linear)]
+
+
+def norm_params(model: Transformer) -> list[tuple[str, torch.nn.Parameter, bool]]:
+    """Norm weights (and LayerNorm biases) with canonical names."""
+    mods = [(f"layers.{i}.{n}", getattr(blk, n)) for i, blk in enumerate(model.blocks) for n in ("attn_norm", "ff_norm")]
+    mods += [("final_norm", model.final_norm), ("embed.norm", model.embed_norm)]
+    out = []
+    for name, m in mods:
+        if m is None:
+            continue
+        out.append((name + ".weight", m.weight, False))
+        if isinstance(m, LayerNorm):
+            out.append((name + ".bias", m.bias, False))
+    return out
+
+
+# --------------------------------------------------------------------------------------------- set-up
+
+def _sha256_file(path: Path) -> str:
+    from .compress import sha256_file
+    return sha256_file(path)
+
+
+def _identity(path: Path) -> dict:
+    """A model's file names and checksums, as a manifest's `source.files` lists them."""
+    from .io.read import open_source
+    src = open_source(path)
+    return {"path": Path(str(src.path)).name,
+            "files": [{"name": f.name, "sha256": _sha256_file(f)} for f in src.files]}
+
+
+def _same_files(ident: dict, manifest_source: dict) -> bool:
+    """Do a model's files match the source files a manifest names (by name and checksum)?"""
+    want = sorted((f["name"], f["sha256"]) for f in manifest_source.get("files", []))
+    return bool(want) and want == sorted((f["name"], f["sha256"]) for f in ident["files"])
+
+
+def find_teacher(teacher: str | None, src: Path, manifest: dict) -> tuple[Path | None, dict | None]:
+    """The teacher's path and identity: `teacher` as given, nothing for "none", or the manifest's source model.
+
+    The source is looked for at the manifest's `source.abs_path`, among the built-in models with the same
+    file name, and beside the compressed directory; a candidate counts only when its checksums match.
+
+    Raises:
+        CompressError: an explicit path that does not exist, or no candidate matches the manifest.
+    """
+    if teacher == "none":
+        return None, None
+    msrc = manifest.get("source", {})
+    if teacher is not None:
+        path = resolve(teacher)
+        if not path.exists():
+            raise CompressError(f"--teacher {teacher}: no such file or directory; give the source model or 'none'")
+        ident = _identity(path)
+        return path, {**ident, "matches_source": _same_files(ident, msrc)}
+    name = msrc.get("path", "")
+    cands = []
+    if msrc.get("abs_path"):
+        cands.append(Path(msrc["abs_path"]))
+    for key, (_, _, rel) in BUILTIN.items():
+        if name and Path(rel).name == name:
+            cands.append(f"builtin:{key}")
+    if name:
+        cands.append(src.parent / name)
+    for c in cands:
+        try:
+            path = resolve(str(c)) if isinstance(c, str) else c
+        except CompressError:
+            continue
+        if path.exists():
+            ident = _identity(path)
+            if _same_files(ident, msrc):
+                return path, {**ident, "matches_source": True}
+    raise CompressError(f"{src}: cannot find the source model {name or '(unnamed)'} its manifest names (with matching "
+                        f"checksums); pass --teacher PATH, or --teacher none to train on the next-token loss alone")
+
+
+def _check_options(steps, batch, context, lr, decay, decay_coef, penalty_every, temperature, mix, topk, save_every,
+                   eval_tokens, world) -> None:
+    """One-line errors for option values that cannot work."""
+    def positive_int(name, v):
+        if isinstance(v, bool) or not isinstance(v, int) or v <= 0:
+            raise CompressError(f"--{name}: must be a positive whole number, got {v!r}")
+    for name, v in (("steps", steps), ("batch", batch), ("penalty-every", penalty_every), ("topk", topk)):
+        positive_int(name, v)
+    if isinstance(context, bool) or not isinstance(context, int) or context < 2:
+        raise CompressError(f"--context: must be at least 2 tokens, got {context!r}")
+    if not (isinstance(lr, (int, float)) and math.isfinite(lr) and lr > 0):
+        raise CompressError(f"--lr: must be a positive number, got {lr!r}")
+    if decay not in DECAYS:
+        raise CompressError(f"--decay: unknown value {decay!r}; expected one of {', '.join(DECAYS)}")
+    if not (isinstance(decay_coef, (int, float)) and math.isfinite(decay_coef) and decay_coef >= 0):
+        raise CompressError(f"--decay-coef: must be a number ≥ 0, got {decay_coef!r}")
+    if not (isinstance(temperature, (int, float)) and math.isfinite(temperature) and temperature > 0):
+        raise CompressError(f"--temperature: must be a positive number, got {temperature!r}")
+    if not (isinstance(mix, (int, float)) and 0 <= mix <= 1):
+        raise CompressError(f"--mix: must be between 0 and 1 (the weight of the next-token loss), got {mix!r}")
+    if isinstance(save_every, bool) or not isinstance(save_every, int) or save_every < 0:
+        raise CompressError(f"--save-every: must be a whole number of steps ≥ 0 (0: no checkpoints), got {save_every!r}")
+    if eval_tokens is not None:
+        positive_int("eval-tokens", eval_tokens)
+    if batch % world:
+        raise CompressError(f"--batch {batch} does not split over {world} processes; give a multiple of {world}")
+
+
+def _init_distributed() -> tuple[int, int, bool]:
+    """(rank, world size, whether we created the process group) from torchrun's environment."""
+    world = int(os.environ.get("WORLD_SIZE", "1"))
+    if world <= 1:
+        return 0, 1, False
+    import torch.distributed as dist
+    if dist.is_initialized():
+        return dist.get_rank(), dist.get_world_size(), False
+    dist.init_process_group("gloo")
+    return dist.get_rank(), dist.get_world_size(), True
+
+
+def _barrier(world: int) -> None:
+    if world > 1:
+        import torch.distributed as dist
+        dist.barrier()
+
+
+def _mean_over_ranks(values: list[float], world: int) -> list[float]:
+    """Average a few floats over the processes (identity on one process)."""
+    if world == 1:
+        return values
+    import torch.distributed as dist
+    t = torch.tensor(values, dtype=torch.float64)
+    dist.all_reduce(t)
+    return (t / world).tolist()
+
+
+def _eval_sets(loaded, eval_texts, eval_tokens, context) -> list[tuple[str, dict, list[int]]]:
+    """(file name, description, token ids) per held-out file, each checked to hold at least one window."""
+    out = []
+    for path in eval_texts or []:
+        text, (desc,) = read_texts([path])
+        ids = tokens(loaded, text)
+        if eval_tokens:
+            ids = ids[:eval_tokens]
+        if len(ids) < 2:
+            raise CompressError(f"{path}: {len(ids)} tokens is too short to measure perplexity; give more text")
+        out.append((str(path), desc, ids))
+    return out
+
+
+def _perplexities(model, sets, context) -> dict[str, dict]:
+    return {desc["name"]: {"perplexity": r["perplexity"], "tokens": r["tokens"]}
+            for _, desc, ids in sets for r in [evaluate.perplexity(model, ids, context=context)]}
+
+
+def checkpoint_path(out: str | Path) -> Path:
+    """Where the tune writing `out` keeps its checkpoint: a hidden sibling file."""
+    out = Path(out)
+    return out.parent / f".{out.name}.tune-checkpoint.pt"
+
+
+def _save_checkpoint(path: Path, state: dict) -> None:
+    """torch.save to a temporary sibling, then one rename: the file on disk is always a complete checkpoint."""
+    tmp = path.with_name(f"{path.name}.partial-{os.getpid()}")
+    try:
+        torch.save(state, tmp)
+        os.replace(tmp, path)
+    except OSError as e:
+        raise CompressError(f"{path}: writing the checkpoint failed ({e.strerror or e})") from None
+    finally:
+        tmp.unlink(missing_ok=True)
+
+
+def _load_checkpoint(path: Path, fingerprint: dict) -> dict:
+    """A checkpoint written by the same settings, data, model and teacher.
+
+    Raises:
+        CompressError: missing, unreadable, or written by a different run.
+    """
+    if not path.is_file():
+        raise CompressError(f"{path}: no checkpoint to resume from; run without --resume to start")
+    try:
+        state = torch.load(path, map_location="cpu", weights_only=True)
+    except Exception as e:  # a truncated or foreign file: pickle, zip and runtime errors alike
+        raise CompressError(f"{path}: not a readable tune checkpoint ({e.__class__.__name__}); "
+                            "delete it to start over") from None
+    if not isinstance(state, dict) or state.get("format") != CHECKPOINT_FORMAT:
+        raise CompressError(f"{path}: not a tune checkpoint of format {CHECKPOINT_FORMAT}; delete it to start over")
+    old = state.get("fingerprint", {})
+    diff = sorted(k for k in set(old) | set(fingerprint) if old.get(k) != fingerprint.get(k))
+    if diff:
+        raise CompressError(f"{path}: written by a run with other {', '.join(diff)}; use the same options to resume, "
+                            "or pass --force without --resume to start over")
+    return state
+
+
+# ------------------------------------------------------------------------------------------- the tune
+
+def tune(src_dir: str | Path, texts: list[str | Path], out: str | Path, *, steps: int = 100, batch: int = 4,
+         context: int = 128, lr: float = 1e-4, seed: int = 0, decay: str = "factor",
+         decay_coef: float = DEFAULT_DECAY_COEF, penalty_every: int = DEFAULT_PENALTY_EVERY,
+         temperature: float = DEFAULT_TEMPERATURE, mix: float = DEFAULT_MIX, teacher: str | None = None,
+         topk: int = DEFAULT_TOPK, eval_texts: list[str | Path] | None = None, eval_tokens: int | None = None,
+         save_every: int = 100, resume: bool = False, train_norms: bool = False, train_dense: bool = False,
+         force: bool = False, quiet: bool = False) -> dict:
+    """Fine-tune the factors of a compressed directory on text and write the tuned directory.
+
+    Args:
+        src_dir: a directory written by `compress` (or by an earlier tune).
+        texts: UTF-8 training text files, cut into blocks of `context` tokens.
+        out: the directory to write (same layout as `src_dir`; its manifest gains a `tune` section).
+        steps, batch, context, lr, seed: optimiser steps, global blocks per step, tokens per block, peak
+            learning rate, seed of the data order.
+        decay, decay_coef, penalty_every: "frobenius" | "factor" | "none", λ, and how often the Frobenius
+            penalty is evaluated (see the module docstring).
+        temperature, mix, teacher, topk: distillation temperature, weight of the next-token loss, teacher path
+            (None: the manifest's source model, "none": no teacher), teacher tokens cached per position.
+        eval_texts, eval_tokens: held-out text files scored (perplexity at `context`) before and after, at most
+            `eval_tokens` tokens of each.
+        save_every, resume: checkpoint every N steps (0: never); continue from the checkpoint.
+        train_norms, train_dense: also train the norm weights; also the dense feed-forward matrices.
+        force, quiet: replace `out` and a stale checkpoint; no progress line.
+
+    Returns:
+        A report dict: out, steps, tokens, seconds, tokens_per_second, curve, eval, teacher, settings.
+
+    Raises:
+        CompressError: a bad option, a missing or too short text, a directory that is not a compressed
+            model, a teacher that cannot be found or does not fit, an existing output without `force`.
+        TuneInterrupted: Ctrl-C; the last checkpoint (if any) is complete.
+    """
+    t_start = time.perf_counter()
+    world_env = max(1, int(os.environ.get("WORLD_SIZE", "1")))
+    _check_options(steps, batch, context, lr, decay, decay_coef, penalty_every, temperature, mix, topk, save_every,
+                   eval_tokens, world_env)
+    src = Path(src_dir)
+    if not src.exists():
+        raise CompressError(f"{src}: no such directory; expected a directory written by `attncompress compress`")
+    if not is_compressed(src):
+        raise CompressError(f"{src}: not a compressed model (no attncompress.json); compress the model first with "
+                            "`attncompress compress`, then tune its output")
+    out = Path(out)
+    if out.resolve() == src.resolve():
+        raise CompressError(f"--out {out}: is the model being tuned; choose another directory")
+    from .io.write import atomic_dir, check_output, write_model_dir
+    check_output(out, force)
+    ckpt = checkpoint_path(out)
+    if ckpt.exists() and not resume and not force:
+        raise CompressError(f"{ckpt}: a checkpoint of an earlier run exists; pass --resume to continue it or "
+                            "--force to start over")
+    if not texts:
+        raise CompressError("no training text; give at least one --text FILE")
+    manifest = read_manifest(src)
+
+    loaded = load_model(src)
+    model = loaded.model
+    if not model.is_decoder:
+        raise CompressError(f"{src}: tune needs a decoder; this {loaded.shape.family} model is an encoder")
+    max_pos = loaded.shape.max_positions
+    if max_pos and context > max_pos:
+        raise CompressError(f"--context {context}: longer than the model's {max_pos} positions; give at most {max_pos}")
+    text, described = read_texts(texts)
+    blocks = token_blocks(tokens(loaded, text), context, source=", ".join(str(t) for t in texts))  # (n, s)
+    n_blocks = blocks.shape[0]
+    sets = _eval_sets(loaded, eval_texts, eval_tokens, context)
+
+    use_teacher = mix < 1
+    t_path, t_ident = find_teacher(teacher, src, manifest) if use_teacher else (None, None)
+    teacher_model = None
+    if t_path is not None:
+        tl = load_model(t_path)
+        teacher_model = tl.model
+        if not teacher_model.is_decoder or tl.shape.vocab_size != loaded.shape.vocab_size:
+            raise CompressError(f"--teacher {t_path}: a decoder with {loaded.shape.vocab_size} tokens is expected, got "
+                                f"a {tl.shape.family} model with {tl.shape.vocab_size}")
+        teacher_model.requires_grad_(False)
+    eff_mix = float(mix) if teacher_model is not None else 1.0
+    settings = TuneSettings(steps=steps, batch=batch, context=context, lr=float(lr), seed=seed, decay=decay,
+                            decay_coef=float(decay_coef), penalty_every=penalty_every, temperature=float(temperature),
+                            mix=eff_mix, topk=topk, train_norms=train_norms, train_dense=train_dense,
+                            warmup=max(1, round(WARMUP_FRACTION * steps)))
+    data = {"files": described, "context": context, "blocks": n_blocks, "tokens": int(blocks.numel()),
+            "tokens_sha256": hashlib.sha256(blocks.numpy().tobytes()).hexdigest()}
+    model_sha = _sha256_file(src / "model.safetensors")
+    fingerprint = {"settings": json.dumps(settings.to_json(), sort_keys=True), "data": data["tokens_sha256"],
+                   "model": model_sha, "teacher": json.dumps(t_ident, sort_keys=True)}
+
+    # --- what trains
+    model.requires_grad_(False)
+    factors = factor_params(model) + (dense_ff_params(model) if train_dense else [])
+    norms = norm_params(model) if train_norms else []
+    trained = factors + norms
+    for _, p, _ in trained:
+        p.requires_grad_(True)
+    groups = [{"params": [p for _, p, _ in factors], "weight_decay": decay_coef if decay == "factor" else 0.0}]
+    if norms:
+        groups.append({"params": [p for _, p, _ in norms], "weight_decay": 0.0})
+    opt = torch.optim.AdamW(groups, lr=lr)
+    for g in opt.param_groups:
+        g["initial_lr"] = lr
+
+    rank, world, created = _init_distributed()
+    try:
+        net = model
+        if world > 1:
+            from torch.nn.parallel import DistributedDataParallel
+            net = DistributedDataParallel(model)
+        local = batch // world
+        per_rank_blocks = min(n_blocks, steps * local)
+        cache_bytes = per_rank_blocks * context * min(topk, loaded.shape.vocab_size) * 12  # float32 + int64
+        cache: dict[int, tuple[torch.Tensor, torch.Tensor]] | None = {} if cache_bytes <= CACHE_BYTES else None
+
+        start, curve, eval_before = 0, [], None
+        if resume:
+            state = _load_checkpoint(ckpt, fingerprint)
+            named = {n: p for n, p, _ in trained}
+            with torch.no_grad():
+                for n, t in state["params"].items():
+                    named[n].copy_(t)
+            opt.load_state_dict(state["optimizer"])
+            torch.set_rng_state(state["rng"])
+            start, curve, eval_before = state["step"], state["curve"], state["eval_before"]
+        t_load = time.perf_counter() - t_start
+        if eval_before is None and sets:
+            if rank == 0:
+                eval_before = _perplexities(model, sets, context)
+            _barrier(world)
+        t_eval0 = time.perf_counter() - t_start - t_load
+
+        def teacher_block(j: int):
+            """Top-k teacher targets of block j, computed alone so the bits never depend on the batch."""
+            if cache is not None and j in cache:
+                return cache[j]
+            with torch.no_grad():
+                tgt = teacher_targets(teacher_model(blocks[j:j + 1])[0], topk, temperature)  # (s, k) each
+            if cache is not None:
+                cache[j] = tgt
+            return tgt
+
+        last_ckpt = start if resume else None
+        warnings_: list[str] = []
+        step = start
+        pen_value = curve[-1]["penalty"] if curve else None
+        t_train = time.perf_counter()
+        vocab = loaded.shape.vocab_size
+        try:
+            with Progress(steps - start, "tune" if start == 0 else f"tune (from step {start})", unit="step",
+                          quiet=quiet or rank != 0) as bar:
+                for step in range(start, steps):
+                    t0 = time.perf_counter()
+                    idx = block_order(n_blocks, seed, step * batch, batch)[rank * local:(rank + 1) * local]
+                    x = blocks[idx]  # (b, s)
+                    mult = lr_multiplier(step, steps, settings.warmup)
+                    for g in opt.param_groups:
+                        g["lr"] = lr * mult
+                    opt.zero_grad(set_to_none=True)
+                    logits = net(x)  # (b, s, V)
+                    ce = F.cross_entropy(logits[:, :-1].reshape(-1, vocab).float(), x[:, 1:].reshape(-1))
+                    loss, kl = ce, None
+                    if teacher_model is not None:
+                        tg = [teacher_block(int(j)) for j in idx]
+                        logp = torch.stack([t[0] for t in tg]).reshape(-1, tg[0][0].shape[-1])  # (b·s, k)
+                        ids = torch.stack([t[1] for t in tg]).reshape(-1, tg[0][1].shape[-1])  # (b·s, k)
+                        kl = distill_kl(logits.reshape(-1, vocab), logp, ids, temperature)
+                        loss = eff_mix * ce + (1 - eff_mix) * kl
+                    total = loss
+                    if decay == "frobenius" and decay_coef > 0 and step % penalty_every == 0:
+                        pen = decay_coef * frobenius_penalty(model, dense=train_dense)
+                        pen_value = float(pen.detach())
+                        if step == 0 and pen_value > float(loss.detach()) and rank == 0:
+                            note = (f"warning: the Frobenius penalty {pen_value:.4g} exceeds the loss "
+                                    f"{float(loss.detach()):.4g} at the start; λ = {decay_coef:g} will mostly shrink "
+                                    f"the factors (λ ≈ {0.05 * float(loss.detach()) * decay_coef / pen_value:.2g} "
+                                    "would make it 5% of the loss)")
+                            warnings_.append(note)
+                            if not quiet:
+                                sys.stderr.write(note + "\n")
+                        total = total + penalty_every * pen  # lazy: the weight of the skipped steps at once
+                    total.backward()
+                    opt.step()
+                    vals = _mean_over_ranks([float(loss.detach()), float(ce.detach()),
+                                             float(kl.detach()) if kl is not None else 0.0], world)
+                    curve.append({"step": step + 1, "loss": vals[0], "ce": vals[1],
+                                  "kl": vals[2] if kl is not None else None, "penalty": pen_value,
+                                  "lr": lr * mult})
+                    dt = time.perf_counter() - t0
+                    bar.update(1, step=f"{step + 1}/{steps}", loss=vals[0],
+                               penalty=pen_value if pen_value is not None else "-",
+                               tok_s=f"{batch * context / dt:.0f}")
+                    if save_every and (step + 1) % save_every == 0 and step + 1 < steps:
+                        if rank == 0:
+                            _save_checkpoint(ckpt, {
+                                "format": CHECKPOINT_FORMAT, "fingerprint": fingerprint, "step": step + 1,
+                                "params": {n: p.detach().clone() for n, p, _ in trained},
+                                "optimizer": opt.state_dict(), "rng": torch.get_rng_state(), "curve": curve,
+                                "eval_before": eval_before})
+                        _barrier(world)
+                        last_ckpt = step + 1
+        except KeyboardInterrupt:
+            held = (f"the checkpoint {ckpt} holds step {last_ckpt}; continue with --resume" if last_ckpt
+                    else "no checkpoint was written yet (see --save-every)")
+            raise TuneInterrupted(f"interrupted at step {step + 1} of {steps}; {held}") from None
+        t_train = time.perf_counter() - t_train
+
+        eval_after = None
+        t1 = time.perf_counter()
+        if sets and rank == 0:
+            eval_after = _perplexities(model, sets, context)
+        t_eval1 = time.perf_counter() - t1
+
+        t2 = time.perf_counter()
+        section = {"settings": settings.to_json(), "data": data, "teacher": t_ident,
+                   "teacher_cache": (f"top-{settings.topk}" if cache is not None else "off") if t_ident else None,
+                   "from": {"path": src.name, "sha256": model_sha}, "processes": world,
+                   "eval": {"files": [d for _, d, _ in sets], "tokens_cap": eval_tokens, "context": context,
+                            "before": eval_before, "after": eval_after},
+                   "curve": curve}
+        if rank == 0:
+            new_manifest = copy.deepcopy(manifest)
+            if "tune" in manifest:
+                section["previous"] = manifest["tune"]
+            new_manifest["tune"] = section
+            weights = {n: loaded.source.get(n) for n in loaded.source.names()}
+            for n, p, transposed in trained:
+                weights[n] = (p.detach().T if transposed else p.detach()).contiguous().clone()
+            cfg_file = src / "source-config.json"
+            config = json.loads(cfg_file.read_text(encoding="utf-8")) if cfg_file.is_file() else None
+            with atomic_dir(out, force) as tmp:
+                write_model_dir(tmp, weights, new_manifest, loaded.tokenizer, config)
+            ckpt.unlink(missing_ok=True)
+        _barrier(world)
+        t_write = time.perf_counter() - t2
+    finally:
+        if created:
+            import torch.distributed as dist
+            dist.destroy_process_group()
+    trained_steps = steps - start
+    return {"out": str(out), "steps": steps, "start_step": start, "tokens": trained_steps * batch * context,
+            "tokens_per_second": trained_steps * batch * context / t_train if t_train > 0 else None,
+            "seconds": {"load": round(t_load, 3), "eval_before": round(t_eval0, 3), "train": round(t_train, 3),
+                        "eval_after": round(t_eval1, 3), "write": round(t_write, 3)},
+            "curve": curve, "eval": {"before": eval_before, "after": eval_after}, "teacher": t_ident,
+            "warnings": warnings_,
+            "teacher_cache": section["teacher_cache"], "settings": settings.to_json(), "processes": world}
