@@ -36,34 +36,38 @@ class LayerStats:
     gate_sens: torch.Tensor | None = None  # (f,) the same for the gate output (gated feed-forward only)
 
 
-@torch.no_grad()
-def collect_stats(model: Transformer, blocks: torch.Tensor, batch: int = 8, quiet: bool = True) -> list[LayerStats]:
-    """Run calibration token blocks (n_blocks, s) through the model and accumulate per-layer Gram matrices.
+def empty_stats(shape: ModelShape) -> LayerStats:
+    """Zero statistics for one layer, ready for `stat_hooks` to fill."""
+    d, f = shape.d_model, shape.d_ff
+    z = lambda *s: torch.zeros(*s, dtype=torch.float64)  # noqa: E731
+    return LayerStats(z(d, d), z(d), z(d, d), z(f, f), 0)
 
-    The output head is never run: only the blocks' inputs are needed.
-    """
-    sh = model.shape
-    stats = [LayerStats(torch.zeros(sh.d_model, sh.d_model, dtype=torch.float64),
-                        torch.zeros(sh.d_model, dtype=torch.float64),
-                        torch.zeros(sh.d_model, sh.d_model, dtype=torch.float64),
-                        torch.zeros(sh.d_ff, sh.d_ff, dtype=torch.float64), 0) for _ in range(sh.n_layers)]
 
-    def add(i, field):
+def stat_hooks(blk, st: LayerStats, shape: ModelShape) -> list:
+    """Install the hooks that accumulate one block's statistics into `st`; returns the handles to remove."""
+    def add(field):
         def hook(_module, args):
-            x = args[0].reshape(-1, args[0].shape[-1])  # (n, d)
-            g = getattr(stats[i], field)
+            x = args[0].reshape(-1, args[0].shape[-1])  # (n, d) or (n, f)
+            g = getattr(st, field)
             g += (x.T @ x).double()  # float32 product per batch, float64 sum
             if field == "attn_gram":
-                stats[i].attn_sum += x.sum(0).double()
-                stats[i].tokens += x.shape[0]
+                st.attn_sum += x.sum(0).double()
+                st.tokens += x.shape[0]
         return hook
+    return [blk.attn.register_forward_pre_hook(add("attn_gram")), blk.ff.register_forward_pre_hook(add("ff_gram")),
+            blk.ff.down.register_forward_pre_hook(add("down_gram"))] + sensitivity_hooks(blk.ff, st, shape)
 
-    handles = []
-    for i, blk in enumerate(model.blocks):
-        handles.append(blk.attn.register_forward_pre_hook(add(i, "attn_gram")))
-        handles.append(blk.ff.register_forward_pre_hook(add(i, "ff_gram")))
-        handles.append(blk.ff.down.register_forward_pre_hook(add(i, "down_gram")))
-        handles += sensitivity_hooks(blk.ff, stats[i], sh)
+
+@torch.no_grad()
+def collect_stats(model: Transformer, blocks: torch.Tensor, batch: int = 8, quiet: bool = True) -> list[LayerStats]:
+    """Run calibration token blocks (n_blocks, s) through the whole model and accumulate per-layer statistics.
+
+    The output head is never run: only the blocks' inputs are needed. (`compress` streams layer by layer
+    with the same hooks instead.)
+    """
+    sh = model.shape
+    stats = [empty_stats(sh) for _ in range(sh.n_layers)]
+    handles = [h for blk, st in zip(model.blocks, stats) for h in stat_hooks(blk, st, sh)]
     try:
         with Progress(blocks.shape[0] * blocks.shape[1], "calibration", unit="tok", quiet=quiet) as bar:
             for j in range(0, blocks.shape[0], batch):

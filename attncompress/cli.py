@@ -228,7 +228,8 @@ def tune(path, texts, out, steps, batch, context, lr, seed, decay, decay_coef, p
 @click.option("--stride", type=int, help="Perplexity window step. [default: --context]")
 @click.option("--max-tokens", type=int, help="Score only the first N tokens of the text.")
 @click.option("--runs", default=5, show_default=True, help="Timed runs per speed figure (median); 0 skips speed.")
-@click.option("--threads", type=int, help="Threads for the speed measurement. [default: torch's]")
+@click.option("--threads", type=int, help="Threads for the speed measurement [default: torch's]; on cores shared "
+              "with other jobs set OMP_WAIT_POLICY=PASSIVE too.")
 @click.option("--json", "as_json", is_flag=True, help="Print the report as JSON (schema attncompress.compare/1).")
 @click.option("--out", type=click.Path(), help="Write compare.json, report.md and PNG plots to this directory.")
 @click.option("--force", is_flag=True, help="Replace --out if it exists.")

@@ -13,7 +13,6 @@ import statistics
 import time
 from contextlib import contextmanager
 from dataclasses import dataclass
-from pathlib import Path
 
 import torch
 import torch.nn.functional as F
@@ -73,9 +72,16 @@ def model_facts(ld: Loaded, weights: dict) -> dict:
         "runtime_bytes": sum(p.numel() * p.element_size() for p in ld.model.parameters()),
         "kv_bytes_per_token": kv_bytes_per_token(ld.shape, weights) if ld.model.is_decoder else None,
         "plan": None if plan is None else {"strategy": plan.get("strategy"), "keep": plan.get("keep"),
-                                            "layers": plan.get("layers")},
+                                            "layers": plan.get("layers"), "full": _full_ranks(ld.shape)},
         "method": (ld.manifest or {}).get("method"),
     }
+
+
+def _full_ranks(shape) -> dict:
+    """The most units each kind of matrix can keep: rotary pairs or rank for qk, rank for vo and feed-forward."""
+    from .plan import ff_kinds
+    return {"qk": shape.n_pairs if shape.rotary else shape.head_dim, "vo": shape.head_dim,
+            **{k: min(shape.d_model, shape.d_ff) for k in ff_kinds(shape)}}
 
 
 def _ratio(b, a):
@@ -301,7 +307,8 @@ def speed(a: _Model, b: _Model, runs: int = RUNS, threads: int | None = None,
         out = {"threads": n_threads, "runs": runs}
         if ma.is_decoder:
             buf = torch.ones(256 << 18) if bandwidth else None  # 256 MB of float32, far above any cache
-            t = time_decoders([ma, mb], runs=runs, probe=(lambda: measure_bandwidth(runs=3, buffer=buf)) if bandwidth else None)
+            probe = (lambda: measure_bandwidth(runs=3, buffer=buf)) if bandwidth else None
+            t = time_decoders([ma, mb], runs=runs, probe=probe)
             del buf
             out["prompt"] = {"tokens": t["prompt_tokens"], **_side(t["prompt"])}
             dec = {"cached_tokens": t["prompt_tokens"], "tokens_per_run": t["decode_tokens"], **_side(t["decode"])}
@@ -360,7 +367,8 @@ def compare(a: str, b: str, texts: list[str] | None = None, lines: list[str] | N
           quantised GGUF), "dtypes": {stored dtype: tensor count}, "note" (str or null)},
           "runtime_bytes" (float32 parameters in memory), "kv_bytes_per_token" (int; null for encoders),
           "plan" ({"strategy", "keep", "layers": [{"layer", "qk", "vo", "ff": {kind: rank|null}, "qk_pairs"}]}
-          from the manifest, or null), "method" (manifest's method or null).
+          from the manifest, and "full": {kind: most units} (qk in rotary pairs or rank); null for a model
+          that is not compressed), "method" (manifest's method or null).
         - "ratios": B over A for "parameters", "block_matrices", "disk_bytes", "runtime_bytes",
           "kv_bytes_per_token" (null for encoders).
         - "quality": null without text; decoders: {"kind": "perplexity", "texts": [{"name", "bytes", "sha256",

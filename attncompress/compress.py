@@ -267,28 +267,13 @@ def _embed(loaded: Loaded, blocks: torch.Tensor) -> torch.Tensor:
 
 @torch.no_grad()
 def _run_block(shape: ModelShape, w: dict[str, torch.Tensor], layer: int, xs: torch.Tensor) -> analysis.LayerStats:
-    """Run block `layer` over the hidden states xs (n_blocks, s, d), in place, and return its input Gram matrices.
+    """Run block `layer` over the hidden states xs (n_blocks, s, d), in place, and return its statistics.
 
-    The hooks accumulate as `analysis.collect_stats` does for the whole model: a float32 product per batch,
-    summed in float64.
+    The same hooks as `analysis.collect_stats` for the whole model (`analysis.stat_hooks`).
     """
-    d, f = shape.d_model, shape.d_ff
-    st = analysis.LayerStats(torch.zeros(d, d, dtype=torch.float64), torch.zeros(d, dtype=torch.float64),
-                             torch.zeros(d, d, dtype=torch.float64), torch.zeros(f, f, dtype=torch.float64), 0)
-
-    def add(field):
-        def hook(_module, args):
-            x = args[0].reshape(-1, args[0].shape[-1])  # (n, d) or (n, f)
-            g = getattr(st, field)
-            g += (x.T @ x).double()
-            if field == "attn_gram":
-                st.attn_sum += x.sum(0).double()
-                st.tokens += x.shape[0]
-        return hook
-
+    st = analysis.empty_stats(shape)
     blk = build_block(shape, w, layer)
-    handles = [blk.attn.register_forward_pre_hook(add("attn_gram")), blk.ff.register_forward_pre_hook(add("ff_gram")),
-               blk.ff.down.register_forward_pre_hook(add("down_gram"))]
+    handles = analysis.stat_hooks(blk, st, shape)
     try:
         for j in range(0, xs.shape[0], CALIB_BATCH):
             # the block's output replaces its input: the next layer's input, and all the state carried over
@@ -302,15 +287,18 @@ def _run_block(shape: ModelShape, w: dict[str, torch.Tensor], layer: int, xs: to
 def _save_stats(scratch: Path, layer: int, st: analysis.LayerStats) -> None:
     """Put one layer's Gram matrices on disk (float64, exact) until the factorise pass needs them."""
     from safetensors.torch import save_file
-    save_file({"attn_gram": st.attn_gram, "attn_sum": st.attn_sum, "ff_gram": st.ff_gram, "down_gram": st.down_gram,
-               "tokens": torch.tensor(st.tokens)}, str(scratch / f"layer-{layer}.safetensors"))
+    t = {"attn_gram": st.attn_gram, "attn_sum": st.attn_sum, "ff_gram": st.ff_gram, "down_gram": st.down_gram,
+         "tokens": torch.tensor(st.tokens)}
+    t.update({k: getattr(st, k) for k in ("up_sens", "gate_sens") if getattr(st, k) is not None})
+    save_file(t, str(scratch / f"layer-{layer}.safetensors"))
 
 
 def _load_stats(scratch: Path, layer: int) -> analysis.LayerStats:
     """One layer's Gram matrices as `_save_stats` left them."""
     from safetensors.torch import load_file
     t = load_file(str(scratch / f"layer-{layer}.safetensors"))
-    return analysis.LayerStats(t["attn_gram"], t["attn_sum"], t["ff_gram"], t["down_gram"], int(t["tokens"]))
+    return analysis.LayerStats(t["attn_gram"], t["attn_sum"], t["ff_gram"], t["down_gram"], int(t["tokens"]),
+                               t.get("up_sens"), t.get("gate_sens"))
 
 
 def _release_large_frees() -> None:
@@ -350,7 +338,8 @@ def _first_pass(loaded: Loaded, calib, damping: float, scratch: Path | None, qui
                 if scratch is not None:
                     _save_stats(scratch, i, st)
                 timer.lap("calibrate")
-            roots = analysis.layer_roots(st, damping, with_bias_row=not sh.rotary and sh.qkv_bias)
+            roots = analysis.layer_roots(st, damping, with_bias_row=not sh.rotary and sh.qkv_bias,
+                                         down=w[f"layers.{i}.ff.down.weight"])
             spectra.append(analysis.layer_spectra(sh, w, i, roots))
             del w, st, roots  # nothing of this layer but its spectra is kept
             timer.lap("spectra")
@@ -420,7 +409,8 @@ def _second_pass(an: Analysed, p: planlib.RankPlan, shards, quiet: bool) -> None
         for i in range(sh.n_layers):
             w = layer_weights(loaded, i)
             st = _load_stats(an.scratch, i) if an.scratch is not None else None
-            roots = analysis.layer_roots(st, an.damping, with_bias_row=not sh.rotary and sh.qkv_bias)
+            roots = analysis.layer_roots(st, an.damping, with_bias_row=not sh.rotary and sh.qkv_bias,
+                                         down=w[f"layers.{i}.ff.down.weight"])
             new = factorize_layer(sh, w, i, p.ranks(i), roots)
             del w, st, roots
             timer.lap("factorise")

@@ -83,6 +83,10 @@ def _fmt(x, spec: str = ".4g") -> str:
     return "-" if x is None else format(x, spec)
 
 
+def _ppl(x: float) -> str:
+    return f"{x:.3f}" if x < 1e4 else f"{x:.3g}"
+
+
 def _label(m: dict) -> str:
     plan = m.get("plan")
     extra = f", keep {plan['keep']:g} {plan['strategy']}" if plan else ""
@@ -93,7 +97,8 @@ def compare_rows(r: dict) -> list[tuple[str, str, str, str]]:
     """The comparison as (what, A, B, B vs A) rows, shared by the terminal table and the markdown report."""
     a, b, q, sp = r["a"], r["b"], r["quality"], r["speed"]
     ratio = r["ratios"]
-    rows = [("parameters", _m(a["parameters"]["total"]), _m(b["parameters"]["total"]), _fmt(ratio["parameters"], ".3f")),
+    rows = [("parameters", _m(a["parameters"]["total"]), _m(b["parameters"]["total"]),
+             _fmt(ratio["parameters"], ".3f")),
             ("block-matrix parameters", _m(a["parameters"]["block_matrices"]), _m(b["parameters"]["block_matrices"]),
              _fmt(ratio["block_matrices"], ".3f"))]
     disk = [_bytes(m["disk"]["bytes"]) + (" (quantised)" if m["disk"]["quantised"] else "") for m in (a, b)]
@@ -104,7 +109,7 @@ def compare_rows(r: dict) -> list[tuple[str, str, str, str]]:
         rows.append(("KV cache bytes/token", f"{a['kv_bytes_per_token']:,}", f"{b['kv_bytes_per_token']:,}",
                      _fmt(ratio["kv_bytes_per_token"], ".3f")))
     if q and q["kind"] == "perplexity":
-        rows.append((f"perplexity ({q['tokens']:,} tokens)", f"{q['a']:.3f}", f"{q['b']:.3f}", f"{q['ratio']:.3f}"))
+        rows.append((f"perplexity ({q['tokens']:,} tokens)", _ppl(q["a"]), _ppl(q["b"]), _ppl(q["ratio"])))
     elif q:
         c = q["cosine"]
         rows.append((f"cosine A·B per line ({q['lines']} lines)", "", f"mean {c['mean']:.4f} p5 {c['p5']:.4f} "
@@ -114,16 +119,16 @@ def compare_rows(r: dict) -> list[tuple[str, str, str, str]]:
         if "prompt" in sp:
             p, d = sp["prompt"], sp["decode"]
             rows.append((f"prompt 1x{p['tokens']} (ms)", f"{p['a_ms']:.1f}", f"{p['b_ms']:.1f}",
-                         f"{p['speedup']:.2f}x faster"))
-            rows.append(("decode (ms/token)", f"{d['a_ms']:.1f}", f"{d['b_ms']:.1f}", f"{d['speedup']:.2f}x faster"))
+                         f"speedup {p['speedup']:.2f}x"))
+            rows.append(("decode (ms/token)", f"{d['a_ms']:.1f}", f"{d['b_ms']:.1f}", f"speedup {d['speedup']:.2f}x"))
             if "a_limit_ms" in d:
                 rows.append(("  bytes-read limit (ms/token)", f"{d['a_limit_ms']:.1f}", f"{d['b_limit_ms']:.1f}",
-                             f"{d['limit_speedup']:.2f}x at best"))
+                             f"speedup {d['limit_speedup']:.2f}x at best"))
                 rows.append(("  decode / limit", f"{d['a_over_limit']:.2f}", f"{d['b_over_limit']:.2f}", ""))
         if "batch" in sp:
             t = sp["batch"]
             rows.append((f"batch of {t['sentences']} sentences (ms)", f"{t['a_ms']:.1f}", f"{t['b_ms']:.1f}",
-                         f"{t['speedup']:.2f}x faster"))
+                         f"speedup {t['speedup']:.2f}x"))
     return rows
 
 
@@ -131,8 +136,14 @@ def _speed_note(sp: dict | None) -> str:
     if not sp:
         return "speed not measured"
     bw = f"streaming read {sp['bandwidth_gb_s']:.1f} GB/s; " if "bandwidth_gb_s" in sp else ""
-    return (f"speed: same process, A and B interleaved, median of {sp['runs']} runs, {sp['threads']} threads; "
+    note = (f"speed: same process, A and B interleaved, median of {sp['runs']} runs, {sp['threads']} threads; "
             f"{bw}speedup = time A / time B")
+    series = [sp[k][f"{side}_runs_ms"] for k in ("prompt", "decode", "batch") if k in sp for side in "ab"]
+    spread = max((max(r) / min(r) for r in series if r), default=1.0)
+    if spread > 1.3:
+        note += (f"\nnoisy: runs of one figure differ by up to {spread:.1f}x (a loaded machine?); try --threads 1, "
+                 "more --runs, or OMP_WAIT_POLICY=PASSIVE when other jobs share the cores")
+    return note
 
 
 def compare_text(r: dict) -> str:
@@ -172,7 +183,7 @@ def compare_markdown(r: dict, plots: list[str]) -> str:
         plan = m.get("plan")
         if not plan:
             continue
-        kinds = [k for k in ("qk", "vo") if k in plan["layers"][0]] + list(plan["layers"][0]["ff"])
+        kinds = ["qk", "vo"] + [k for k in ("gate", "up", "down") if k in plan["layers"][0]["ff"]]
         md += ["", f"## Ranks of {name} (plan {plan['strategy']}, keep {plan['keep']:g})", "",
                "| layer | " + " | ".join(kinds) + " |", "|---|" + "---:|" * len(kinds)]
         for L in plan["layers"]:
@@ -189,7 +200,7 @@ def _rank_plot(plt, r: dict, path) -> bool:
     if not sides:
         return False
     plan0 = sides[0][1]["plan"]
-    kinds = ["qk", "vo"] + list(plan0["layers"][0]["ff"])
+    kinds = ["qk", "vo"] + [k for k in ("gate", "up", "down") if k in plan0["layers"][0]["ff"]]
     fig, axes = plt.subplots(1, len(kinds), figsize=(3.0 * len(kinds), 2.8), squeeze=False)
     for ax, kind in zip(axes[0], kinds):
         for name, m in sides:
@@ -202,6 +213,10 @@ def _rank_plot(plt, r: dict, path) -> bool:
             if dense:  # dense matrices: a mark along the top edge
                 ax.plot(dense, [0.97] * len(dense), "x", ms=4, transform=ax.get_xaxis_transform(),
                         label=f"{name} dense")
+        full = (plan0.get("full") or {}).get(kind)
+        if full:
+            ax.axhline(full, ls="--", lw=0.8, color="grey", label="full rank")
+        ax.set_ylim(0, None)
         ax.set_title(kind + (" (pairs)" if kind == "qk" and r["a"]["family"] == "llama" else ""))
         ax.set_xlabel("layer")
     axes[0][0].set_ylabel("kept rank")

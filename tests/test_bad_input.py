@@ -213,43 +213,34 @@ def row_header_not_json(c):
     return c.args(d), f"{f}: safetensors header is not valid JSON; the file is corrupt", 1
 
 
-def row_overlapping_offsets(c):
-    d = _config_only(c.tiny_dirs, c.tmp)
-    f = d / "model.safetensors"
-    _raw_safetensors(f, {"a": {"dtype": "F32", "shape": [4], "data_offsets": [0, 16]},
-                         "b": {"dtype": "F32", "shape": [4], "data_offsets": [8, 24]}}, bytes(24))
-    return c.args(d), f"{f}: tensors a and b overlap in the data section; the header is corrupt", 1
+def _entry(dtype, shape, start, end):
+    return {"dtype": dtype, "shape": shape, "data_offsets": [start, end]}
 
 
-def row_offsets_past_the_end(c):
-    d = _config_only(c.tiny_dirs, c.tmp)
-    f = d / "model.safetensors"
-    _raw_safetensors(f, {"a": {"dtype": "F32", "shape": [4], "data_offsets": [0, 16]},
-                         "b": {"dtype": "F32", "shape": [4], "data_offsets": [16, 32]}}, bytes(16))
-    return c.args(d), f"{f}: tensor b ends at byte 32 but the data section has 16 bytes; the file is truncated", 1
+def _header_row(header: dict, data_bytes: int, message: str):
+    """A row whose model directory holds a hand-written safetensors file; `{f}` in the message is that file."""
+    def row(c):
+        d = _config_only(c.tiny_dirs, c.tmp)
+        f = d / "model.safetensors"
+        _raw_safetensors(f, header, bytes(data_bytes))
+        return c.args(d), message.format(f=f), 1
+    return row
 
 
-def row_offsets_inverted(c):
-    d = _config_only(c.tiny_dirs, c.tmp)
-    f = d / "model.safetensors"
-    _raw_safetensors(f, {"a": {"dtype": "F32", "shape": [4], "data_offsets": [16, 0]}}, bytes(16))
-    return c.args(d), (f"{f}: tensor a has invalid data offsets [16, 0]; expected [start, end] with "
-                       "0 <= start <= end"), 1
-
-
-def row_offsets_disagree_with_shape(c):
-    d = _config_only(c.tiny_dirs, c.tmp)
-    f = d / "model.safetensors"
-    _raw_safetensors(f, {"a": {"dtype": "F32", "shape": [4], "data_offsets": [0, 12]}}, bytes(12))
-    return c.args(d), f"{f}: tensor a spans 12 bytes but shape [4] of F32 needs 16", 1
-
-
-def row_unsupported_dtype(c):
-    d = _config_only(c.tiny_dirs, c.tmp)
-    f = d / "model.safetensors"
-    _raw_safetensors(f, {"a": {"dtype": "F8_E4M3", "shape": [4], "data_offsets": [0, 4]}}, bytes(4))
-    return c.args(d), (f"{f}: tensor a has unsupported dtype F8_E4M3; expected one of "
-                       "F64, F32, F16, BF16, I64, I32, I16, I8, U8, BOOL"), 1
+row_overlapping_offsets = _header_row(
+    {"a": _entry("F32", [4], 0, 16), "b": _entry("F32", [4], 8, 24)}, 24,
+    "{f}: tensors a and b overlap in the data section; the header is corrupt")
+row_offsets_past_the_end = _header_row(
+    {"a": _entry("F32", [4], 0, 16), "b": _entry("F32", [4], 16, 32)}, 16,
+    "{f}: tensor b ends at byte 32 but the data section has 16 bytes; the file is truncated")
+row_offsets_inverted = _header_row(
+    {"a": _entry("F32", [4], 16, 0)}, 16,
+    "{f}: tensor a has invalid data offsets [16, 0]; expected [start, end] with 0 <= start <= end")
+row_offsets_disagree_with_shape = _header_row(
+    {"a": _entry("F32", [4], 0, 12)}, 12, "{f}: tensor a spans 12 bytes but shape [4] of F32 needs 16")
+row_unsupported_dtype = _header_row(
+    {"a": _entry("F8_E4M3", [4], 0, 4)}, 4,
+    "{f}: tensor a has unsupported dtype F8_E4M3; expected one of F64, F32, F16, BF16, I64, I32, I16, I8, U8, BOOL")
 
 
 def row_integer_weights(c):
@@ -516,7 +507,8 @@ def _one_shot(d: Path, out: Path, keep: float, texts, n_blocks: int, context: in
         blocks, _ = pipeline._calibration_blocks(loaded, texts, context, n_blocks)
         stats = analysis.collect_stats(loaded.model, blocks)
     roots = [analysis.layer_roots(stats[i] if stats else None, pipeline.DEFAULT_DAMPING,
-                                  with_bias_row=not sh.rotary and sh.qkv_bias) for i in range(sh.n_layers)]
+                                  with_bias_row=not sh.rotary and sh.qkv_bias,
+                                  down=weights[f"layers.{i}.ff.down.weight"]) for i in range(sh.n_layers)]
     spectra = [analysis.layer_spectra(sh, weights, i, roots[i]) for i in range(sh.n_layers)]
     p = planlib.make_plan(pipeline.spectra_list(sh, spectra), sh, keep, strategy)
     p = pipeline.choose_pairs(sh, p, spectra)

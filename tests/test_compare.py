@@ -170,7 +170,7 @@ def test_json_has_the_documented_keys(tiny_dirs, compressed, calib_file, lines_f
     assert set(r["a"]) == set(r["b"]) == MODEL_KEYS and set(r["ratios"]) == RATIO_KEYS
     assert set(r["a"]["parameters"]) == {"total", "block_matrices", "groups"}
     assert set(r["a"]["disk"]) == {"bytes", "files", "quantised", "dtypes", "note"}
-    assert r["a"]["plan"] is None and set(r["b"]["plan"]) == {"strategy", "keep", "layers"}
+    assert r["a"]["plan"] is None and set(r["b"]["plan"]) == {"strategy", "keep", "layers", "full"}
     assert set(r["quality"]) == PPL_KEYS
     sp = r["speed"]
     assert set(sp) == {"threads", "runs", "prompt", "decode", "bandwidth_gb_s"}
