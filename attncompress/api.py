@@ -111,7 +111,7 @@ def spectrum(path: str, texts: list[str] | None = None, damping: float = 0.01, q
             "damping": damping, "calibration": an.calibration, "layers": layers}
 
 
-def plan(path: str, out: str | None, keep: float | None = None, strategy: str = "global",
+def plan(path: str, out: str | None, keep: float | None = None, strategy: str = "uniform",
          texts: list[str] | None = None, damping: float = 0.01, quiet: bool = False) -> dict:
     """Choose ranks under a budget and (with `out`) write the plan JSON for the user to edit."""
     an = pipeline.analyse(path, texts, damping=damping, quiet=quiet)
@@ -212,3 +212,36 @@ def expand(path: str, out: str, force: bool = False) -> dict:
             (tmp / "tokenizer_config.json").write_text(dumps({"tokenizer_class": "PreTrainedTokenizerFast"}),
                                                        encoding="utf-8")
     return {"out": str(out), "tensors": len(tensors), "parameters": sum(t.numel() for t in tensors.values())}
+
+
+# -------------------------------------------------------------------------------------------- the whole job
+
+def run(path: str, out: str, *, keep: float, texts: list[str], eval_texts: list[str] | None = None,
+        strategy: str = "uniform", steps: int = 60, batch: int = 4, context: int = 128, lr: float = 1e-4,
+        decay: str = "frobenius", seed: int = 0, max_eval_tokens: int | None = 4096, force: bool = False,
+        quiet: bool = False) -> dict:
+    """Compress, tune and compare in one go; `out` gets `compressed/`, `tuned/` and `report/`.
+
+    The whole directory is written atomically: an error or Ctrl-C leaves nothing behind.
+    """
+    from . import compare as comparelib, tune as tunelib
+    from .io.write import atomic_dir, check_output
+    from .report import write_compare
+    check_output(out, force)
+    read_texts(texts)  # refuse unreadable text before the long work
+    if eval_texts:
+        read_texts(eval_texts)
+    with atomic_dir(out, force) as tmp:
+        def say(msg):
+            if not quiet:
+                import sys
+                print(f"[run] {msg}", file=sys.stderr, flush=True)
+        say(f"1/3 compress {path} to keep {keep} of the block matrices ({strategy}, whitened by {len(texts)} text file(s))")
+        c = compress(path, str(tmp / "compressed"), keep=keep, strategy=strategy, texts=texts, quiet=quiet)
+        say(f"2/3 tune the factors for {steps} steps ({decay} decay)")
+        t = tunelib.tune(tmp / "compressed", texts, tmp / "tuned", steps=steps, batch=batch, context=context, lr=lr,
+                         seed=seed, decay=decay, quiet=quiet)
+        say("3/3 compare the original with the tuned model")
+        r = comparelib.compare(path, str(tmp / "tuned"), eval_texts or texts, max_tokens=max_eval_tokens, quiet=quiet)
+        write_compare(r, str(tmp / "report"), False)
+    return {"out": str(out), "compress": c, "tune": t, "compare": r}

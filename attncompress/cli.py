@@ -2,9 +2,14 @@
 from __future__ import annotations
 
 import json
+import os
 import sys
 
-import click
+# Spinning OpenMP threads slow everything several-fold when another process shares the cores; waiting
+# passively costs nothing measurable on an idle machine. Set before torch starts its thread pool.
+os.environ.setdefault("OMP_WAIT_POLICY", "PASSIVE")
+
+import click  # noqa: E402
 
 from . import api
 from .errors import CompressError
@@ -98,7 +103,7 @@ def spectrum(path, texts, damping, out, force):
 
 
 _keep_opt = click.option("--keep", type=float, help="Fraction of transformer-block matrix parameters to keep, in (0, 1].")
-_strategy_opt = click.option("--strategy", type=click.Choice(["uniform", "energy", "global"]), default="global",
+_strategy_opt = click.option("--strategy", type=click.Choice(["uniform", "energy", "global"]), default="uniform",
                              show_default=True, help="How ranks are shared out under the budget.")
 
 
@@ -245,3 +250,27 @@ def compare(a, b, texts, context, stride, max_tokens, runs, threads, as_json, ou
              speed_runs=runs, threads=threads, quiet=quiet)
     note = _run(write_compare, r, out, force) if out else None
     _emit(r, as_json, compare_text(r) + (f"\nwrote {out}/report.md and {out}/compare.json; {note}" if out else ""))
+
+
+@main.command()
+@click.argument("path")
+@click.option("--keep", type=float, required=True, help="Fraction of transformer-block matrix parameters to keep, in (0, 1].")
+@click.option("--text", "texts", multiple=True, required=True, type=click.Path(),
+              help="Calibration and tuning text (repeatable; a file or corpus:NAME).")
+@click.option("--eval-text", "eval_texts", multiple=True, type=click.Path(),
+              help="Held-out text for the comparison (repeatable); default: the calibration text.")
+@click.option("--strategy", type=click.Choice(["uniform", "energy", "global"]), default="uniform", show_default=True,
+              help="Rank allocation (uniform measured best on SmolLM2; see README).")
+@click.option("--steps", default=60, show_default=True, help="Tuning steps.")
+@click.option("--decay", type=click.Choice(["frobenius", "factor", "none"]), default="frobenius", show_default=True,
+              help="Penalty while tuning.")
+@click.option("--eval-tokens", default=4096, show_default=True, help="Tokens scored per comparison (0: all).")
+@click.option("--out", required=True, type=click.Path(), help="Directory for compressed/, tuned/ and report/.")
+@click.option("--force", is_flag=True, help="Replace --out if it exists.")
+@click.option("--json", "as_json", is_flag=True, help="Print the comparison as JSON.")
+def run(path, keep, texts, eval_texts, strategy, steps, decay, eval_tokens, out, force, as_json):
+    """The whole job: compress with calibration, tune the factors, compare before and after."""
+    from .report import compare_text
+    r = _run(api.run, path, out, keep=keep, texts=list(texts), eval_texts=list(eval_texts) or None, strategy=strategy,
+             steps=steps, decay=decay, max_eval_tokens=eval_tokens or None, force=force)
+    _emit(r["compare"], as_json, compare_text(r["compare"]) + f"\nwrote {out}/compressed, {out}/tuned and {out}/report")

@@ -427,7 +427,7 @@ def _second_pass(an: Analysed, p: planlib.RankPlan, shards, quiet: bool) -> None
 
 
 def compress(path: str, out: str, *, keep: float | None = None, plan_file: str | None = None,
-             strategy: str = "global", texts: list[str] | None = None, weights_only: bool = False,
+             strategy: str = "uniform", texts: list[str] | None = None, weights_only: bool = False,
              damping: float = DEFAULT_DAMPING, force: bool = False, quiet: bool = False, context: int = CALIB_CONTEXT,
              n_blocks: int = CALIB_BLOCKS, shard_size: int | str = DEFAULT_SHARD_SIZE) -> dict:
     """Compress a source checkpoint into a directory our runtime (and `expand`) reads.

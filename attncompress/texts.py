@@ -17,7 +17,16 @@ _BOM = "\ufeff"  # a UTF-8 byte-order mark some editors put first; not part of t
 
 
 def _read_one(path: str | Path) -> tuple[str, dict]:
-    """Read one UTF-8 text file; return its text and its manifest description."""
+    """Read one UTF-8 text file (or `corpus:NAME`, a built-in corpus); return its text and its description."""
+    if str(path).startswith("corpus:"):
+        from .corpora import CORPORA, corpus_text
+        name = str(path).split(":", 1)[1]
+        if name not in CORPORA:
+            raise CompressError(f"{path}: unknown built-in corpus; expected one of "
+                                + ", ".join(f"corpus:{n}" for n in CORPORA))
+        data = corpus_text(name).encode("utf-8")
+        return data.decode("utf-8"), {"name": str(path), "bytes": len(data),
+                                      "sha256": hashlib.sha256(data).hexdigest(), "lines": data.count(b"\n") + 1}
     p = Path(path)
     if not p.exists():
         raise CompressError(f"{path}: no such text file")

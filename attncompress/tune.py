@@ -19,7 +19,7 @@ default mix 0.5 weighs both terms equally; T = 1 keeps the teacher's own distrib
 next tokens of a block, KL all s positions. Without a teacher the loss is CE alone.
 
 Teacher cache. Full teacher logits cost V·s·4 bytes a block (25 MB for SmolLM2 at 128 tokens), so each
-block keeps only its top-k teacher log-probabilities and their token ids (k = 64: 64 KiB a block at
+block keeps only its top-k teacher log-probabilities and their token ids (k = 64: 96 KiB a block at
 s = 128), computed once, on its own (batch 1, so a cached and a recomputed block give the same bits). The KL
 is then taken between the coarsened distributions over those k tokens plus one bin for the rest of the
 vocabulary: exact when k ≥ V, otherwise a lower bound of the full KL (coarsening never increases a KL
@@ -596,9 +596,7 @@ def tune(src_dir: str | Path, texts: list[str | Path], out: str | Path, *, steps
     groups = [{"params": [p for _, p, _ in factors], "weight_decay": decay_coef if decay == "factor" else 0.0}]
     if norms:
         groups.append({"params": [p for _, p, _ in norms], "weight_decay": 0.0})
-    opt = torch.optim.AdamW(groups, lr=lr)
-    for g in opt.param_groups:
-        g["initial_lr"] = lr
+    opt = torch.optim.AdamW(groups, lr=lr)  # the learning rate is set before every step from the schedule
 
     rank, world, created = _init_distributed()
     try:

@@ -497,7 +497,7 @@ def test_source_tensors_own_their_memory(tiny_dirs):
     torch.testing.assert_close(t, load_file(str(tiny_dirs["llama"][0] / "model.safetensors"))[name], atol=0, rtol=0)
 
 
-def _one_shot(d: Path, out: Path, keep: float, texts, n_blocks: int, context: int, strategy: str = "global"):
+def _one_shot(d: Path, out: Path, keep: float, texts, n_blocks: int, context: int, strategy: str = "uniform"):
     """The whole-model computation: every weight in memory, calibration through the whole runtime at once."""
     loaded = load_model(d)
     sh = loaded.shape
