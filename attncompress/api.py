@@ -218,7 +218,7 @@ def expand(path: str, out: str, force: bool = False) -> dict:
 
 def run(path: str, out: str, *, keep: float, texts: list[str], eval_texts: list[str] | None = None,
         strategy: str = "uniform", steps: int = 60, batch: int = 4, context: int = 128, lr: float = 1e-4,
-        decay: str = "frobenius", seed: int = 0, max_eval_tokens: int | None = 4096, force: bool = False,
+        decay: str = "frobenius", decay_coef: float = 1e-8, seed: int = 0, max_eval_tokens: int | None = 4096, force: bool = False,
         quiet: bool = False) -> dict:
     """Compress, tune and compare in one go; `out` gets `compressed/`, `tuned/` and `report/`.
 
@@ -240,7 +240,7 @@ def run(path: str, out: str, *, keep: float, texts: list[str], eval_texts: list[
         c = compress(path, str(tmp / "compressed"), keep=keep, strategy=strategy, texts=texts, quiet=quiet)
         say(f"2/3 tune the factors for {steps} steps ({decay} decay)")
         t = tunelib.tune(tmp / "compressed", texts, tmp / "tuned", steps=steps, batch=batch, context=context, lr=lr,
-                         seed=seed, decay=decay, quiet=quiet)
+                         seed=seed, decay=decay, decay_coef=decay_coef, teacher=str(resolve(path)), quiet=quiet)
         say("3/3 compare the original with the tuned model")
         r = comparelib.compare(path, str(tmp / "tuned"), eval_texts or texts, max_tokens=max_eval_tokens, quiet=quiet)
         write_compare(r, str(tmp / "report"), False)

@@ -274,3 +274,7 @@ def run(path, keep, texts, eval_texts, strategy, steps, decay, eval_tokens, out,
     r = _run(api.run, path, out, keep=keep, texts=list(texts), eval_texts=list(eval_texts) or None, strategy=strategy,
              steps=steps, decay=decay, max_eval_tokens=eval_tokens or None, force=force)
     _emit(r["compare"], as_json, compare_text(r["compare"]) + f"\nwrote {out}/compressed, {out}/tuned and {out}/report")
+
+
+if __name__ == "__main__":
+    main()

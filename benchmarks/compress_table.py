@@ -5,28 +5,27 @@
 Calibration: the pydoc topics of the calibration half (`attncompress.corpora`, 256 passages of 128 tokens).
 Held-out: the other half of the pydoc topics (same kind) and license texts (other kind), 512-token windows.
 Statistics and spectra are computed once per method and reused for every budget; each cell factorises the
-model in memory and evaluates it, exactly as `attncompress compress` would (same functions).
-Also prints compress wall time per stage and peak resident memory of this process.
+model in memory and evaluates it with the same functions `attncompress compress` uses (whole-model
+calibration here instead of the streaming one: the same numbers). Prints peak resident memory at the end.
 """
 import argparse
 import resource
-import tempfile
 import time
-from pathlib import Path
 
 import torch
 
-from attncompress import corpora, evaluate, plan as planlib
-from attncompress.compress import analyse, choose_pairs, factorize_layer, spectra_list
-from attncompress.io.load import tokens
+from attncompress import analysis, arch, corpora, evaluate, plan as planlib
+from attncompress.compress import choose_pairs, factorize_layer, spectra_list
+from attncompress.io.load import load_model, tokens
 from attncompress.model import build
+from attncompress.models import builtin
+from attncompress.texts import token_blocks
 
 
-def evaluate_plan(an, p, texts):
-    sh = an.loaded.shape
-    w = {n: t for n, t in an.weights.items() if not n.startswith("layers.")}
+def evaluate_plan(sh, W, roots, p, texts):
+    w = {n: t for n, t in W.items() if not n.startswith("layers.")}
     for i in range(sh.n_layers):
-        w.update(factorize_layer(sh, an.weights, i, p.ranks(i), an.roots[i]))
+        w.update(factorize_layer(sh, W, i, p.ranks(i), roots[i]))
     m = build(sh, w).eval()
     return {k: evaluate.perplexity(m, ids, context=512)["perplexity"] for k, ids in texts.items()}
 
@@ -40,38 +39,40 @@ def main():
     ap.add_argument("--blocks", type=int, default=256)
     ap.add_argument("--damping", type=float, default=0.01)
     args = ap.parse_args()
-    tmp = Path(tempfile.mkdtemp())
-    calib = tmp / "calib.txt"
-    corpora.write_corpus("pydoc-calibration", calib)
+    L = load_model(builtin("smollm2-135m"))
+    sh = L.shape
+    W = dict(arch.canonical_weights(L.source, L.walk))
+    texts = {"same kind": tokens(L, corpora.pydoc_text("heldout"))[: args.eval_tokens],
+             "other kind": tokens(L, corpora.license_text())[: args.eval_tokens]}
+    base = {k: evaluate.perplexity(L.model, ids, context=512)["perplexity"] for k, ids in texts.items()}
+    print(f"original: same kind {base['same kind']:.3f}, other kind {base['other kind']:.3f} "
+          f"({args.eval_tokens} tokens each)", flush=True)
     rows = []
-    base = None
     for method in args.methods.split(","):
         t0 = time.perf_counter()
-        an = analyse("builtin:smollm2-135m", [str(calib)] if method == "whitened" else None,
-                     damping=args.damping, n_blocks=args.blocks, quiet=True)
-        stages = dict(an.timer.stages)
-        if base is None:
-            texts = {"same kind": tokens(an.loaded, corpora.pydoc_text("heldout"))[: args.eval_tokens],
-                     "other kind": tokens(an.loaded, corpora.license_text())[: args.eval_tokens]}
-            base = {k: evaluate.perplexity(an.loaded.model, ids, context=512)["perplexity"] for k, ids in texts.items()}
-            print(f"original: same kind {base['same kind']:.3f}, other kind {base['other kind']:.3f} "
-                  f"({args.eval_tokens} tokens each)", flush=True)
-        print(f"{method}: analysis {time.perf_counter() - t0:.1f}s {stages}", flush=True)
+        stats = [None] * sh.n_layers
+        if method == "whitened":
+            blocks = token_blocks(tokens(L, corpora.pydoc_text("calibration")), 128, source="pydoc-calibration")
+            blocks = blocks[torch.linspace(0, blocks.shape[0] - 1, min(args.blocks, blocks.shape[0])).round().long()]
+            stats = analysis.collect_stats(L.model, blocks)
+        t1 = time.perf_counter()
+        roots = [analysis.layer_roots(stats[i], args.damping, down=W[f"layers.{i}.ff.down.weight"])
+                 for i in range(sh.n_layers)]
+        spectra = [analysis.layer_spectra(sh, W, i, roots[i]) for i in range(sh.n_layers)]
+        print(f"{method}: calibration {t1 - t0:.1f}s, spectra {time.perf_counter() - t1:.1f}s", flush=True)
         for strategy in args.strategies.split(","):
             for keep in [float(k) for k in args.keeps.split(",")]:
-                t = time.perf_counter()
-                p = planlib.make_plan(spectra_list(an.loaded.shape, an.spectra), an.loaded.shape, keep, strategy)
-                p = choose_pairs(an.loaded.shape, p, an.spectra)
-                ppl = evaluate_plan(an, p, texts)
-                rows.append((keep, method, strategy, ppl, time.perf_counter() - t))
+                p = planlib.make_plan(spectra_list(sh, spectra), sh, keep, strategy)
+                p = choose_pairs(sh, p, spectra)
+                ppl = evaluate_plan(sh, W, roots, p, texts)
+                rows.append((keep, method, strategy, ppl))
                 print(f"  keep {keep} {strategy:8} same {ppl['same kind']:9.3f} ({ppl['same kind'] / base['same kind']:6.2f}x)"
                       f"  other {ppl['other kind']:9.3f} ({ppl['other kind'] / base['other kind']:6.2f}x)", flush=True)
-        del an
     print()
     print("| keep | factors | plan | same-kind ppl | ratio | other-kind ppl | ratio |")
     print("|---|---|---|---|---|---|---|")
     print(f"| 1.0 | original | - | {base['same kind']:.2f} | 1.00 | {base['other kind']:.2f} | 1.00 |")
-    for keep, method, strategy, ppl, _ in sorted(rows, key=lambda r: (-r[0], r[1], r[2])):
+    for keep, method, strategy, ppl in sorted(rows, key=lambda r: (-r[0], r[1], r[2])):
         print(f"| {keep} | {method} | {strategy} | {ppl['same kind']:.2f} | {ppl['same kind'] / base['same kind']:.2f} | "
               f"{ppl['other kind']:.2f} | {ppl['other kind'] / base['other kind']:.2f} |")
     print(f"\npeak resident memory of this process: {resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024:.0f} MB")
