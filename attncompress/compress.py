@@ -6,9 +6,11 @@ new canonical weights); `compress` is the pipeline around it.
 from __future__ import annotations
 
 import ctypes
+import dataclasses
 import hashlib
 import json
 import shutil
+import sys
 import time
 from dataclasses import dataclass
 from pathlib import Path
@@ -376,7 +378,19 @@ def read_plan_file(plan_file: str, shape: ModelShape) -> planlib.RankPlan:
         reason = "not UTF-8 text" if isinstance(e, UnicodeDecodeError) else (e.strerror or e.__class__.__name__)
         raise CompressError(f"{plan_file}: cannot read the plan ({reason})") from None
     p = planlib.RankPlan.from_json(text, source=plan_file)
+    notes = []
+    # pairs listed for another pair count than the (edited) qk: choose them again rather than refuse
+    resized = [lr.layer for lr in p.layers if lr.qk_pairs is not None and any(len(g) != lr.qk for g in lr.qk_pairs)]
+    if resized:
+        p = dataclasses.replace(p, layers=tuple(dataclasses.replace(lr, qk_pairs=None) if lr.layer in resized else lr
+                                                for lr in p.layers))
+        notes.append(f"qk_pairs of layer(s) {', '.join(map(str, resized))} did not match qk and will be chosen again")
     check_plan_ranks(shape, p, plan_file)
+    p, stale = planlib.recount(shape, p, plan_file)
+    if stale:
+        notes.append(f"'predicted' was stale ({', '.join(stale)}); recomputed from the ranks")
+    for note in notes:
+        sys.stderr.write(f"note: plan {plan_file}: {note}\n")
     return p
 
 

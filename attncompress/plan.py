@@ -226,13 +226,14 @@ class RankPlan:
     The predicted counts describe the ranks at creation; after editing ranks use :func:`count_params`.
     """
     strategy: str
-    keep: float  # the target fraction of block-matrix parameters
-    model: Mapping[str, object]  # shape fingerprint, FINGERPRINT_FIELDS
+    keep: float | None  # the target fraction of block-matrix parameters (None in a hand-written plan)
+    model: Mapping[str, object]  # shape fingerprint, FINGERPRINT_FIELDS ({} in a hand-written plan)
     layers: tuple[LayerRanks, ...]
-    block_params_kept: int
-    block_params_dense: int
-    kv_bytes_per_token: int
-    kv_bytes_per_token_dense: int
+    # the predicted counts; None where a hand-edited plan left them out (`recount` fills them in)
+    block_params_kept: int | None
+    block_params_dense: int | None
+    kv_bytes_per_token: int | None
+    kv_bytes_per_token_dense: int | None
     bytes_per_element: int = DEFAULT_BYTES_PER_ELEMENT
 
     def __post_init__(self):
@@ -271,53 +272,46 @@ class RankPlan:
 
     @classmethod
     def from_json(cls, text: str, source: str = "<plan>") -> "RankPlan":
-        """Read a plan written by :meth:`to_json`.
+        """Read a plan written by :meth:`to_json`, or edited by hand.
+
+        Only ``layers`` (each with ``layer``, ``qk``, ``vo`` and ``ff``) is required. ``qk_pairs`` may be absent
+        or null (a later stage picks the pairs); ``predicted`` may be absent (its counts are then ``None``
+        until :func:`recount` fills them in); ``format``, ``version`` and ``model`` are checked when present.
 
         Args:
             text: the JSON text.
             source: the file name, used in error messages.
         Returns:
-            The plan (not yet checked against a model: call :meth:`check`).
+            The plan (not yet checked against a model: call :func:`recount` or :meth:`check`).
         Raises:
-            CompressError: not JSON, another format or version, missing / unknown / mistyped fields.
+            CompressError: not JSON, another format or version, unknown / mistyped fields, a layer without ranks.
         """
         pre = f"plan {source}"
         try:
             data = json.loads(text)
         except json.JSONDecodeError as exc:
             raise CompressError(f"{pre}: not valid JSON ({exc}); write the plan with attncompress") from None
-        if not isinstance(data, dict) or data.get("format") != PLAN_FORMAT:
-            raise CompressError(f"{pre}: not a rank plan (expected \"format\": \"{PLAN_FORMAT}\")")
-        if data.get("version") != PLAN_VERSION:
+        if not isinstance(data, dict) or data.get("format", PLAN_FORMAT) != PLAN_FORMAT or "layers" not in data:
+            raise CompressError(f"{pre}: not a rank plan (expected \"format\": \"{PLAN_FORMAT}\" and \"layers\")")
+        if data.get("version", PLAN_VERSION) != PLAN_VERSION:
             raise CompressError(f"{pre}: plan version {data.get('version')!r}, this attncompress reads version "
                                 f"{PLAN_VERSION}; make the plan again")
-        _exact_keys(data, {"format", "version", "strategy", "keep", "model", "bytes_per_element", "predicted",
-                           "layers"}, pre)
-        pred = _typed(data, "predicted", dict, pre)
-        _exact_keys(pred, {"block_params_kept", "block_params_dense", "kv_bytes_per_token",
-                           "kv_bytes_per_token_dense"}, f"{pre} predicted")
-        model = _typed(data, "model", dict, pre)
-        _exact_keys(model, set(FINGERPRINT_FIELDS), f"{pre} model")
-        keep = data["keep"]
-        if isinstance(keep, bool) or not isinstance(keep, (int, float)):
+        _known_keys(data, {"format", "version", "strategy", "keep", "model", "bytes_per_element", "predicted",
+                           "layers"}, {"layers"}, pre)
+        pred = _typed(data, "predicted", dict, pre) if data.get("predicted") is not None else {}
+        _known_keys(pred, set(_PREDICTED), set(), f"{pre} predicted")
+        model = _typed(data, "model", dict, pre) if data.get("model") is not None else {}
+        _known_keys(model, set(FINGERPRINT_FIELDS), set(), f"{pre} model")
+        keep = data.get("keep")
+        if keep is not None and (isinstance(keep, bool) or not isinstance(keep, (int, float))):
             raise CompressError(f"{pre}: keep must be a number, got {keep!r}")
-        layers = []
-        for i, item in enumerate(_typed(data, "layers", list, pre)):
-            where = f"{pre} layers[{i}]"
-            if not isinstance(item, dict):
-                raise CompressError(f"{where}: expected an object with layer, qk, vo, ff, qk_pairs")
-            _exact_keys(item, {"layer", "qk", "vo", "ff", "qk_pairs"}, where)
-            ff = _typed(item, "ff", dict, where)
-            pairs = item["qk_pairs"]
-            if pairs is not None and not (isinstance(pairs, list) and all(isinstance(g, list) for g in pairs)):
-                raise CompressError(f"{where}: qk_pairs must be null or a list of lists of pair indices")
-            layers.append(LayerRanks(item["layer"], item["qk"], item["vo"], ff, pairs))
-        return cls(strategy=str(_typed(data, "strategy", str, pre)), keep=keep, model=model, layers=tuple(layers),
-                   block_params_kept=_typed(pred, "block_params_kept", int, pre),
-                   block_params_dense=_typed(pred, "block_params_dense", int, pre),
-                   kv_bytes_per_token=_typed(pred, "kv_bytes_per_token", int, pre),
-                   kv_bytes_per_token_dense=_typed(pred, "kv_bytes_per_token_dense", int, pre),
-                   bytes_per_element=_typed(data, "bytes_per_element", int, pre))
+        layers = tuple(_layer_from_json(item, f"{pre} layers[{i}]")
+                       for i, item in enumerate(_typed(data, "layers", list, pre)))
+        counts = {k: (_typed(pred, k, int, f"{pre} predicted") if k in pred else None) for k in _PREDICTED}
+        bpe = _typed(data, "bytes_per_element", int, pre) if "bytes_per_element" in data else \
+            DEFAULT_BYTES_PER_ELEMENT
+        return cls(strategy=str(_typed(data, "strategy", str, pre)) if "strategy" in data else "edited",
+                   keep=keep, model=model, layers=layers, bytes_per_element=bpe, **counts)
 
     # -- validation
     def check(self, shape: ModelShape, source: str = "<plan>") -> None:
@@ -333,7 +327,7 @@ class RankPlan:
         """
         pre = f"plan {source}"
         differ = [f"{f} {self.model.get(f)!r} in the plan, {getattr(shape, f)!r} in the model"
-                  for f in FINGERPRINT_FIELDS if self.model.get(f) != getattr(shape, f)]
+                  for f in FINGERPRINT_FIELDS if f in self.model and self.model[f] != getattr(shape, f)]
         if differ:
             raise CompressError(f"{pre}: made for another model ({'; '.join(differ)}); make a new plan for this model")
         if not _is_int(self.bytes_per_element) or self.bytes_per_element <= 0:
@@ -452,6 +446,33 @@ def _finish(shape: ModelShape, layers: Sequence[LayerRanks], strategy: str, keep
     return plan
 
 
+_PREDICTED = ("block_params_kept", "block_params_dense", "kv_bytes_per_token", "kv_bytes_per_token_dense")
+
+
+def recount(shape: ModelShape, plan: RankPlan, source: str = "<plan>") -> tuple[RankPlan, list[str]]:
+    """A (maybe hand-edited) plan checked against the model, with its predicted counts made from its ranks.
+
+    Example: a plan whose ranks were lowered by hand but whose ``predicted`` was left as written comes back
+    with fresh counts and ``stale == ["block_params_kept", "kv_bytes_per_token"]``.
+
+    Args:
+        shape: the model the plan is applied to.
+        plan: the plan as read.
+        source: the plan file name, used in error messages.
+    Returns:
+        (plan, stale): the plan with counts, fingerprint and keep (the kept fraction, when absent) filled in,
+        and the names of the counts the plan gave that did not match its ranks.
+    Raises:
+        CompressError: the plan does not fit the model (see :meth:`RankPlan.check`).
+    """
+    plan.check(shape, source)
+    counts = _count(shape, plan.layers)
+    keep = plan.keep if plan.keep is not None else counts.block_kept / counts.block_dense
+    fresh = _finish(shape, plan.layers, plan.strategy, keep, plan.bytes_per_element)
+    stale = [k for k in _PREDICTED if getattr(plan, k) is not None and getattr(plan, k) != getattr(fresh, k)]
+    return fresh, stale
+
+
 def _full_layers(shape: ModelShape) -> tuple[LayerRanks, ...]:
     """The layers of :func:`full_plan` (full rank, dense feed-forward)."""
     qk = shape.n_pairs if shape.rotary else shape.head_dim
@@ -524,13 +545,25 @@ def _typed(data: dict, key: str, typ: type, where: str):
     return value
 
 
-def _exact_keys(data: dict, keys: set, where: str) -> None:
-    """The JSON object has exactly these fields."""
-    missing, extra = sorted(keys - set(data)), sorted(set(data) - keys)
+def _known_keys(data: dict, keys: set, required: set, where: str) -> None:
+    """The JSON object has the required fields and no field outside `keys`."""
+    missing, extra = sorted(required - set(data)), sorted(set(data) - keys)
     if missing:
         raise CompressError(f"{where}: missing field {missing[0]!r}")
     if extra:
         raise CompressError(f"{where}: unknown field {extra[0]!r}")
+
+
+def _layer_from_json(item, where: str) -> LayerRanks:
+    """One entry of a plan's ``layers``: layer, qk, vo and ff required; qk_pairs absent or null means 'choose'."""
+    if not isinstance(item, dict):
+        raise CompressError(f"{where}: expected an object with layer, qk, vo, ff (and optionally qk_pairs)")
+    _known_keys(item, {"layer", "qk", "vo", "ff", "qk_pairs"}, {"layer", "qk", "vo", "ff"}, where)
+    ff = _typed(item, "ff", dict, where)
+    pairs = item.get("qk_pairs")
+    if pairs is not None and not (isinstance(pairs, list) and all(isinstance(g, list) for g in pairs)):
+        raise CompressError(f"{where}: qk_pairs must be null or a list of lists of pair indices")
+    return LayerRanks(item["layer"], item["qk"], item["vo"], ff, pairs)
 
 
 # ---------------------------------------------------------------------------------------------- strategies
