@@ -11,7 +11,7 @@ os.environ.setdefault("OMP_WAIT_POLICY", "PASSIVE")
 
 import click  # noqa: E402
 
-from . import api
+from . import api, tune as tunelib
 from .errors import CompressError
 
 
@@ -172,7 +172,7 @@ def expand(path, out, force):
 @click.option("--context", default=128, show_default=True, help="Tokens per block.")
 @click.option("--lr", default=1e-4, show_default=True, help="Peak learning rate (warm-up, then cosine).")
 @click.option("--seed", default=0, show_default=True, help="Seed of the data order.")
-@click.option("--decay", type=click.Choice(["frobenius", "factor", "none"]), default="factor", show_default=True,
+@click.option("--decay", type=click.Choice(list(tunelib.DECAYS)), default="factor", show_default=True,
               help="frobenius: λ·Σ‖A Bᵀ‖² over the factor pairs (mind its scale: see the README); factor: AdamW "
                    "weight decay on the factors.")
 @click.option("--decay-coef", default=0.01, show_default=True, help="λ of --decay.")
@@ -196,9 +196,6 @@ def expand(path, out, force):
 def tune(path, texts, out, steps, batch, context, lr, seed, decay, decay_coef, penalty_every, teacher, temperature,
          mix, topk, eval_texts, eval_tokens, save_every, resume, train_norms, train_dense, force, quiet, as_json):
     """Fine-tune a compressed directory's factors on text (distilling from the source model); also under torchrun."""
-    import os
-    from . import tune as tunelib
-
     def go():
         try:
             return tunelib.tune(path, list(texts), out, steps=steps, batch=batch, context=context, lr=lr, seed=seed,
@@ -262,7 +259,7 @@ def compare(a, b, texts, context, stride, max_tokens, runs, threads, as_json, ou
 @click.option("--strategy", type=click.Choice(["uniform", "energy", "global"]), default="uniform", show_default=True,
               help="Rank allocation (uniform measured best on SmolLM2; see README).")
 @click.option("--steps", default=60, show_default=True, help="Tuning steps.")
-@click.option("--decay", type=click.Choice(["frobenius", "factor", "none"]), default="frobenius", show_default=True,
+@click.option("--decay", type=click.Choice(list(tunelib.DECAYS)), default="frobenius", show_default=True,
               help="Penalty while tuning.")
 @click.option("--eval-tokens", default=4096, show_default=True, help="Tokens scored per comparison (0: all).")
 @click.option("--out", required=True, type=click.Path(), help="Directory for compressed/, tuned/ and report/.")

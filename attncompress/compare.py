@@ -10,7 +10,6 @@ from __future__ import annotations
 
 import math
 import statistics
-import time
 from contextlib import contextmanager
 from dataclasses import dataclass
 
@@ -22,6 +21,7 @@ from .errors import CompressError
 from .io.load import Loaded, load_weights
 from .model import KVCache, Transformer, build
 from .models import resolve
+from .progress import seconds
 from .texts import read_lines, read_texts
 
 SCHEMA = "attncompress.compare/1"
@@ -202,11 +202,7 @@ def measure_bandwidth(megabytes: int = 256, runs: int = 5, buffer: torch.Tensor 
     """
     x = buffer if buffer is not None else torch.ones(megabytes * (1 << 20) // 4)  # (n,) float32, pages mapped
     x.sum()
-    ts = []
-    for _ in range(runs):
-        t0 = time.perf_counter()
-        x.sum()
-        ts.append(time.perf_counter() - t0)
+    ts = [seconds(x.sum) for _ in range(runs)]
     return x.numel() * x.element_size() / statistics.median(ts)
 
 
@@ -230,13 +226,6 @@ def prefill(model: Transformer, ids: torch.Tensor, cache: KVCache) -> torch.Tens
     return model.logits(x[:, -1:])  # generation needs only the next token's distribution
 
 
-def _time(fn) -> float:
-    """Seconds one call of fn takes."""
-    t0 = time.perf_counter()
-    fn()
-    return time.perf_counter() - t0
-
-
 def time_decoders(models: list[Transformer], runs: int = RUNS, prompt_tokens: int = PROMPT_TOKENS,
                   decode_tokens: int = DECODE_TOKENS, seed: int = 0, probe=None) -> dict:
     """Prompt (1×prompt_tokens) and per-token decode time of each model, finely interleaved, per run.
@@ -258,13 +247,13 @@ def time_decoders(models: list[Transformer], runs: int = RUNS, prompt_tokens: in
     def run(order: list[int], record: bool):
         caches = {j: KVCache(models[j], 1, prompt_tokens + decode_tokens) for j in order}
         for j in order:
-            tp = _time(lambda: prefill(models[j], ids[:, :prompt_tokens], caches[j]))
+            tp = seconds(lambda: prefill(models[j], ids[:, :prompt_tokens], caches[j]))
             if record:
                 out["prompt"][j].append(tp)
         steps = {j: 0.0 for j in order}
         for i in range(prompt_tokens, prompt_tokens + decode_tokens):
             for j in order:
-                steps[j] += _time(lambda: models[j](ids[:, i:i + 1], cache=caches[j], start=i))  # (1, 1, vocab)
+                steps[j] += seconds(lambda: models[j](ids[:, i:i + 1], cache=caches[j], start=i))  # (1, 1, vocab)
         if record:
             for j in order:
                 out["decode"][j].append(steps[j] / decode_tokens)
@@ -288,7 +277,7 @@ def time_encoders(models: list[Transformer], ids: torch.Tensor, mask: torch.Tens
         for r in range(runs):
             order = range(len(models)) if r % 2 == 0 else reversed(range(len(models)))
             for j in order:
-                out[j].append(_time(lambda: models[j](ids, attention_mask=mask)))
+                out[j].append(seconds(lambda: models[j](ids, attention_mask=mask)))
     return {"batch": out}
 
 

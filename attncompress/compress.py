@@ -11,7 +11,6 @@ import hashlib
 import json
 import shutil
 import sys
-import time
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -23,7 +22,7 @@ from .io.read import open_source
 from .io.write import DEFAULT_SHARD_SIZE
 from .model import build, build_block
 from .models import resolve
-from .progress import Progress
+from .progress import Progress, Timer
 from .texts import read_texts, token_blocks
 from .analysis import Roots
 from .errors import CompressError
@@ -158,23 +157,6 @@ def sha256_file(path: Path, chunk: int = 1 << 22) -> str:
         while block := f.read(chunk):
             h.update(block)
     return h.hexdigest()
-
-
-@dataclass
-class Timer:
-    """Wall time per stage, for the report; a stage met again (once per layer) adds up."""
-    def __post_init__(self):
-        self._sums: dict[str, float] = {}
-        self._t = time.perf_counter()
-
-    def lap(self, name: str) -> None:
-        now = time.perf_counter()
-        self._sums[name] = self._sums.get(name, 0.0) + now - self._t
-        self._t = now
-
-    @property
-    def stages(self) -> dict[str, float]:
-        return {k: round(v, 3) for k, v in self._sums.items()}
 
 
 def check_plan_ranks(shape: ModelShape, plan: planlib.RankPlan, source: str) -> None:
