@@ -14,7 +14,7 @@ from .progress import Progress
 from . import compress as pipeline
 from .compress import compress  # noqa: F401  (the API's compress)
 from .errors import CompressError
-from .io.load import load_model, load_weights, tokens
+from .loading import load_model, load_weights, tokens
 from .models import resolve
 from .texts import read_lines, read_texts
 
@@ -53,18 +53,8 @@ def inspect(path: str, heads: int | None = None, kv_heads: int | None = None) ->
         "model_type": (source.config or {}).get("model_type"), "shape": shape.__dict__.copy(),
         "parameters": evaluate.param_groups(weights), "block_matrix_parameters": evaluate.block_matrix_params(weights),
         "dtypes": source.dtypes(), "layers": layers, "unused": walk.unused if walk else [],
-        "kv_bytes_per_token": kv_bytes_per_token(shape, weights) if shape.family != "bert" else None,
+        "kv_bytes_per_token": evaluate.kv_bytes_per_token(shape, weights) if shape.family != "bert" else None,
     }
-
-
-def kv_bytes_per_token(shape, weights, bytes_per_element: int = 4) -> int:
-    """Key and value bytes one token adds to the cache: Σ_layers g·(w_qk + w_vo)·bytes."""
-    total = 0
-    for i in range(shape.n_layers):
-        q = weights[f"layers.{i}.attn.q.weight"]
-        v = weights[f"layers.{i}.attn.v.weight"]
-        total += shape.n_kv_heads * (q.shape[0] // shape.n_heads + v.shape[0] // shape.n_kv_heads)
-    return total * bytes_per_element
 
 
 def perplexity(path: str, texts: list[str], context: int = 512, stride: int | None = None,
@@ -180,7 +170,7 @@ def expand(path: str, out: str, force: bool = False) -> dict:
     """Multiply a compressed directory back into a dense model directory of the source family's layout."""
     import dataclasses
     from . import arch
-    from .io.load import is_compressed
+    from .loading import is_compressed
     from .io.write import atomic_dir, check_output, dumps, save_tensors
     check_output(out, force)
     if not is_compressed(path):

@@ -18,7 +18,7 @@ import torch.nn.functional as F
 
 from . import evaluate
 from .errors import CompressError
-from .io.load import Loaded, load_weights
+from .loading import Loaded, load_weights
 from .model import KVCache, Transformer, build
 from .models import resolve
 from .progress import seconds
@@ -52,7 +52,6 @@ def _open(path: str, label: str) -> _Model:
 
 def model_facts(ld: Loaded, weights: dict) -> dict:
     """Counts of one model: parameters, bytes of its weight files, KV-cache bytes per token, the plan."""
-    from .api import kv_bytes_per_token
     files = [{"name": f.name, "bytes": f.stat().st_size} for f in ld.source.files]
     quantised = ld.source.format == "gguf" and any(dt not in ("F32", "F16", "BF16", "F64")
                                                      for dt in ld.source.dtypes())
@@ -70,7 +69,7 @@ def model_facts(ld: Loaded, weights: dict) -> dict:
                  "note": ("quantised on disk; dequantised to float32 to run, so disk bytes understate memory"
                           if quantised else None)},
         "runtime_bytes": sum(p.numel() * p.element_size() for p in ld.model.parameters()),
-        "kv_bytes_per_token": kv_bytes_per_token(ld.shape, weights) if ld.model.is_decoder else None,
+        "kv_bytes_per_token": evaluate.kv_bytes_per_token(ld.shape, weights) if ld.model.is_decoder else None,
         "plan": None if plan is None else {"strategy": plan.get("strategy"), "keep": plan.get("keep"),
                                             "layers": plan.get("layers"), "full": _full_ranks(ld.shape)},
         "method": (ld.manifest or {}).get("method"),
@@ -216,7 +215,7 @@ def decode_bytes(model: Transformer, cached: int) -> int:
             if name not in ("tokens", "positions", "types"))
     if model.is_decoder and model.lm_head is None:
         n += model.tokens.numel() * model.tokens.element_size()  # the tied output head
-    kv = sum(blk.attn.n_kv_heads * (blk.attn.w_qk + blk.attn.w_vo) for blk in model.blocks) * 4  # float32 cache
+    kv = model.shape.kv_bytes(model.kv_widths)  # float32 cache
     return n + kv * cached
 
 

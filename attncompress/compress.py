@@ -17,7 +17,7 @@ from pathlib import Path
 import torch
 
 from . import analysis, arch, factorize as fz, plan as planlib
-from .io.load import Loaded, is_compressed, tokens
+from .loading import Loaded, is_compressed, tokens
 from .io.read import open_source
 from .io.write import DEFAULT_SHARD_SIZE
 from .model import build, build_block

@@ -398,7 +398,7 @@ def kv_cache_bytes(shape: ModelShape, layers: Sequence[LayerRanks],
         Bytes per token over all layers.
     """
     per_unit = 2 if shape.rotary else 1  # a rotary pair is two cached key numbers
-    return sum(shape.n_kv_heads * (per_unit * lr.qk + lr.vo) * bytes_per_element for lr in layers)
+    return shape.kv_bytes([(per_unit * lr.qk, lr.vo) for lr in layers], bytes_per_element)
 
 
 def shape_fingerprint(shape: ModelShape) -> dict:

@@ -59,6 +59,14 @@ class ModelShape:
         """Rotary frequency pairs per head (0 without rotary)."""
         return self.head_dim // 2 if self.rotary else 0
 
+    def kv_bytes(self, widths, bytes_per_element: int = 4) -> int:
+        """Key and value bytes one token adds to the cache: Σ_layers n_kv_heads·(w_qk + w_vo)·bytes.
+
+        The one place the cache size is computed; `widths` gives (w_qk, w_vo) per layer, the key and value
+        widths of one key/value head as stored. Example: 2 kv heads, widths [(8, 8), (4, 6)], 4 bytes → 208.
+        """
+        return sum(self.n_kv_heads * (w_qk + w_vo) for w_qk, w_vo in widths) * bytes_per_element
+
     def to_json(self) -> str:
         return json.dumps(dataclasses.asdict(self), indent=2, sort_keys=True)
 

@@ -76,7 +76,7 @@ import torch.nn.functional as F
 
 from . import evaluate
 from .errors import CompressError
-from .io.load import is_compressed, load_model, read_manifest, tokens
+from .loading import is_compressed, load_model, read_manifest, tokens
 from .model import LayerNorm, Linear, LowRankLinear, Transformer
 from .io.write import atomic_dir, check_output, write_model_dir
 from .models import BUILTIN, resolve

@@ -16,7 +16,7 @@ import torch
 
 from attncompress import analysis, arch, corpora, evaluate, plan as planlib
 from attncompress.compress import choose_pairs, factorize_layer, spectra_list
-from attncompress.io.load import load_model, tokens
+from attncompress.loading import load_model, tokens
 from attncompress.model import build
 from attncompress.models import builtin
 from attncompress.texts import token_blocks

@@ -13,7 +13,7 @@ import time
 import torch
 
 from attncompress import corpora, evaluate
-from attncompress.io.load import load_model, tokens
+from attncompress.loading import load_model, tokens
 from attncompress.models import builtin
 
 

@@ -30,7 +30,7 @@ import torch
 from attncompress import evaluate
 from attncompress.compress import compress
 from attncompress.corpora import write_corpus
-from attncompress.io.load import load_model, tokens
+from attncompress.loading import load_model, tokens
 from attncompress.models import resolve
 from attncompress.tune import DEFAULT_DECAY_COEF, tune
 

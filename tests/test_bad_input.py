@@ -24,7 +24,7 @@ from attncompress import analysis, arch, plan as planlib
 from attncompress import compress as pipeline
 from attncompress.cli import main
 from attncompress.errors import CompressError
-from attncompress.io.load import load_model, load_weights
+from attncompress.loading import load_model, load_weights
 from attncompress.io.read import open_source
 from attncompress.io.write import ShardWriter, parse_size
 

@@ -8,7 +8,7 @@ from click.testing import CliRunner
 
 from attncompress import plan as planlib
 from attncompress.cli import main
-from attncompress.io.load import load_weights
+from attncompress.loading import load_weights
 
 ROOT = Path(__file__).resolve().parents[1]
 

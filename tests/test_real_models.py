@@ -3,7 +3,7 @@ import pytest
 import torch
 
 from attncompress import corpora, evaluate
-from attncompress.io.load import load_model, tokens
+from attncompress.loading import load_model, tokens
 from conftest import minilm_path, smollm2_path
 
 pytestmark = pytest.mark.slow

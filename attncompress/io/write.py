@@ -18,11 +18,11 @@ from pathlib import Path
 import torch
 
 from ..errors import CompressError
-from .read import _ST_DTYPES, MANIFEST
+from .source import MANIFEST, ST_DTYPES
 
 INDEX = "model.safetensors.index.json"
 DEFAULT_SHARD_SIZE = "2GB"
-_DTYPE_NAMES = {dt: name for name, (dt, _) in _ST_DTYPES.items()}
+_DTYPE_NAMES = {dt: name for name, (dt, _) in ST_DTYPES.items()}
 # The order in which the safetensors library lays out tensor data: by dtype (its internal dtype order, descending),
 # then by name. From observing safetensors 0.8's output; tests/test_bad_input.py checks it against save_file.
 _LAYOUT_ORDER = ("I64", "F64", "F32", "I32", "BF16", "F16", "I16", "I8", "U8", "BOOL")
