@@ -8,7 +8,7 @@ from pathlib import Path
 
 import torch
 
-from . import analysis, evaluate
+from . import analysis, evaluate, factorize as fz
 from . import plan as planlib
 from .progress import Progress
 from . import compress as pipeline
@@ -140,7 +140,7 @@ def densify(shape, weights: dict) -> dict:
         pairs = weights.get(p + "pairs")
         w_qk = out[p + "q.weight"].shape[0] // h
         if pairs is not None:
-            dims = torch.cat([pairs, pairs + hd // 2], dim=1)  # (g, 2p) kept rows per group
+            dims = fz.pair_dims(pairs, hd)  # (g, 2p) kept rows per group
         else:
             dims = torch.arange(w_qk).expand(g, -1)  # refactorised heads fill their first w_qk rows
         rep = h // g
