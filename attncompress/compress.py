@@ -16,7 +16,7 @@ from pathlib import Path
 
 import torch
 
-from . import analysis, arch, factorize as fz, plan as planlib
+from . import analysis, arch, factorize as fz, plan as planlib, strategies
 from .loading import Loaded, is_compressed, tokens
 from .io.read import open_source
 from .io.write import DEFAULT_SHARD_SIZE
@@ -355,7 +355,7 @@ def make_rank_plan(an: Analysed, keep: float | None, strategy: str, plan_file: s
         plan = read_plan_file(plan_file, sh)
     if plan is None:
         _check_budget(keep, strategy)
-        plan = planlib.make_plan(spectra_list(sh, an.spectra), sh, keep, strategy)
+        plan = strategies.make_plan(spectra_list(sh, an.spectra), sh, keep, strategy)
     return choose_pairs(sh, plan, an.spectra)
 
 
@@ -363,9 +363,9 @@ def _check_budget(keep: float | None, strategy: str) -> None:
     """--keep and --strategy, checked before any work."""
     if keep is None:
         raise CompressError("give --keep F (fraction of block-matrix parameters to keep) or --plan FILE")
-    planlib._check_keep(keep)
-    if strategy not in planlib.STRATEGIES:
-        raise CompressError(f"--strategy {strategy!r} is unknown; expected one of {', '.join(planlib.STRATEGIES)}")
+    planlib.check_keep(keep)
+    if strategy not in strategies.STRATEGIES:
+        raise CompressError(f"--strategy {strategy!r} is unknown; expected one of {', '.join(strategies.STRATEGIES)}")
 
 
 def _second_pass(an: Analysed, p: planlib.RankPlan, shards, quiet: bool) -> None:
