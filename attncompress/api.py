@@ -1,24 +1,23 @@
 """The Python API: one function per command, each returning a plain report dict."""
 from __future__ import annotations
 
-import hashlib
 import json
-from dataclasses import dataclass
 from pathlib import Path
 
 import torch
 
 from . import analysis, evaluate, factorize as fz
 from . import plan as planlib
-from .progress import Progress
+from . import compare as comparelib
 from . import compress as pipeline
 from .compress import compress  # noqa: F401  (the API's compress)
 from .errors import CompressError
+from .factorize import DEFAULT_DAMPING
 from .loading import load_model, load_weights, tokens
 from .models import resolve
+from .strategies import DEFAULT_STRATEGY
 from .texts import read_lines, read_texts
-
-
+from .tune import DEFAULT_DECAY, DEFAULT_DECAY_COEF, tune  # noqa: F401  (the API's tune)
 
 
 def inspect(path: str, heads: int | None = None, kv_heads: int | None = None) -> dict:
@@ -85,7 +84,7 @@ def embed(path: str, text: str, batch: int = 32) -> dict:
 
 # ------------------------------------------------------------------------------------ spectra and plans
 
-def spectrum(path: str, texts: list[str] | None = None, damping: float = 0.01, quiet: bool = False) -> dict:
+def spectrum(path: str, texts: list[str] | None = None, damping: float = DEFAULT_DAMPING, quiet: bool = False) -> dict:
     """All spectra and energy-kept curves of a source model (whitened when texts are given)."""
     an = pipeline.analyse(path, texts, damping=damping, quiet=quiet)
     layers = []
@@ -101,17 +100,26 @@ def spectrum(path: str, texts: list[str] | None = None, damping: float = 0.01, q
             "damping": damping, "calibration": an.calibration, "layers": layers}
 
 
-def plan(path: str, out: str | None, keep: float | None = None, strategy: str = "uniform",
-         texts: list[str] | None = None, damping: float = 0.01, quiet: bool = False) -> dict:
+def plan(path: str, out: str | None, keep: float | None = None, strategy: str = DEFAULT_STRATEGY,
+         texts: list[str] | None = None, damping: float = DEFAULT_DAMPING, quiet: bool = False) -> dict:
     """Choose ranks under a budget and (with `out`) write the plan JSON for the user to edit."""
     an = pipeline.analyse(path, texts, damping=damping, quiet=quiet)
     p = pipeline.make_rank_plan(an, keep, strategy, None)
     if out:
         from .io.write import write_json_atomic
-        import json
         write_json_atomic(out, json.loads(p.to_json()))
     return {"plan": p, "summary": planlib.summary(an.loaded.shape, p)}
 
+
+
+def compare(a: str, b: str, texts: list[str] | None = None, *, out: str | None = None, force: bool = False,
+            **options) -> dict:
+    """Model A against model B (see `compare.compare` for the options and the report); with `out`, the output
+    directory is checked before the slow part (write it with `report.write_compare`)."""
+    if out:
+        from .io.write import check_output
+        check_output(out, force)
+    return comparelib.compare(a, b, texts, **options)
 
 
 # ----------------------------------------------------------------------------------------------------- expand
@@ -207,14 +215,13 @@ def expand(path: str, out: str, force: bool = False) -> dict:
 # -------------------------------------------------------------------------------------------- the whole job
 
 def run(path: str, out: str, *, keep: float, texts: list[str], eval_texts: list[str] | None = None,
-        strategy: str = "uniform", steps: int = 60, batch: int = 4, context: int = 128, lr: float = 1e-4,
-        decay: str = "frobenius", decay_coef: float = 1e-8, seed: int = 0, max_eval_tokens: int | None = 4096, force: bool = False,
-        quiet: bool = False) -> dict:
+        strategy: str = DEFAULT_STRATEGY, steps: int = 60, batch: int = 4, context: int = 128, lr: float = 1e-4,
+        decay: str = DEFAULT_DECAY, decay_coef: float = DEFAULT_DECAY_COEF, seed: int = 0,
+        max_eval_tokens: int | None = 4096, force: bool = False, quiet: bool = False) -> dict:
     """Compress, tune and compare in one go; `out` gets `compressed/`, `tuned/` and `report/`.
 
     The whole directory is written atomically: an error or Ctrl-C leaves nothing behind.
     """
-    from . import compare as comparelib, tune as tunelib
     from .io.write import atomic_dir, check_output
     from .report import write_compare
     check_output(out, force)
@@ -229,7 +236,7 @@ def run(path: str, out: str, *, keep: float, texts: list[str], eval_texts: list[
         say(f"1/3 compress {path} to keep {keep} of the block matrices ({strategy}, whitened by {len(texts)} text file(s))")
         c = compress(path, str(tmp / "compressed"), keep=keep, strategy=strategy, texts=texts, quiet=quiet)
         say(f"2/3 tune the factors for {steps} steps ({decay} decay)")
-        t = tunelib.tune(tmp / "compressed", texts, tmp / "tuned", steps=steps, batch=batch, context=context, lr=lr,
+        t = tune(tmp / "compressed", texts, tmp / "tuned", steps=steps, batch=batch, context=context, lr=lr,
                          seed=seed, decay=decay, decay_coef=decay_coef, teacher=str(resolve(path)), quiet=quiet)
         say("3/3 compare the original with the tuned model")
         r = comparelib.compare(path, str(tmp / "tuned"), eval_texts or texts, max_tokens=max_eval_tokens, quiet=quiet)

@@ -25,10 +25,10 @@ from .models import resolve
 from .progress import Progress, Timer
 from .texts import read_texts, token_blocks
 from .errors import CompressError
+from .factorize import DEFAULT_DAMPING
 from .shape import ModelShape
 
 FORMAT_VERSION = 1
-DEFAULT_DAMPING = 0.01
 
 
 def factorize_layer(shape: ModelShape, w: dict[str, torch.Tensor], layer: int, ranks: planlib.LayerRanks,

@@ -29,6 +29,8 @@ from .errors import CompressError
 # Relative floor on eigenvalues in the eigendecomposition fallback of gram_root: keeps L invertible with
 # cond(L) <= 1e5 (cond(G) <= 1e10, the scale of the worst Gram matrices we see) so L^{-1} stays usable in float64.
 _EIG_FLOOR = 1e-10
+# Whitening damping relative to the mean diagonal of the Gram (see gram_root); every stage and the CLI use it.
+DEFAULT_DAMPING = 0.01
 
 
 # ----------------------------------------------------------------------------------------------------------
@@ -153,7 +155,7 @@ def singular_values(w: torch.Tensor, l: torch.Tensor | None = None) -> torch.Ten
     return torch.linalg.svdvals(w)
 
 
-def gram_root(gram: torch.Tensor, damping: float = 0.01) -> tuple[torch.Tensor, torch.Tensor]:
+def gram_root(gram: torch.Tensor, damping: float = DEFAULT_DAMPING) -> tuple[torch.Tensor, torch.Tensor]:
     """Square root L of a damped input Gram matrix, G_damped = L L^T, and its inverse.
 
     Damping: G_damped = G + damping * mean(diag(G)) * I. The Gram matrices of real activations reach condition

@@ -20,6 +20,8 @@ from .plan import (
 )
 from .shape import ModelShape
 
+DEFAULT_STRATEGY = "uniform"  # measured best on SmolLM2 (README); compress, plan, run and the CLI use it
+
 
 def _check_spectra(spectra: Sequence[MatrixSpectrum], shape: ModelShape) -> list[MatrixSpectrum]:
     """One spectrum per matrix of the model, priced as :func:`matrix_layout` prices it; returned in layout order."""
@@ -330,7 +332,7 @@ STRATEGIES: dict[str, Callable[..., RankPlan]] = {"uniform": plan_uniform, "ener
                                                   "global": plan_global}
 
 
-def make_plan(spectra: Sequence[MatrixSpectrum], shape: ModelShape, keep: float, strategy: str = "global",
+def make_plan(spectra: Sequence[MatrixSpectrum], shape: ModelShape, keep: float, strategy: str = DEFAULT_STRATEGY,
               **opts) -> RankPlan:
     """Choose ranks with a named strategy.
 
