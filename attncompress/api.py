@@ -6,18 +6,18 @@ from pathlib import Path
 
 import torch
 
-from . import analysis, evaluate, factorize as fz
+from . import analysis, evaluate, factorize as fz, generate as gen
 from . import plan as planlib
 from . import compare as comparelib
 from . import compress as pipeline
-from .compress import compress  # noqa: F401  (the API's compress)
 from .errors import CompressError
 from .factorize import DEFAULT_DAMPING
 from .loading import load_model, load_weights, tokens
 from .models import resolve
 from .strategies import DEFAULT_STRATEGY
 from .texts import read_lines, read_texts
-from .tune import DEFAULT_DECAY, DEFAULT_DECAY_COEF, tune  # noqa: F401  (the API's tune)
+from . import tune as tunelib
+from .tune import DEFAULT_DECAY, DEFAULT_DECAY_COEF
 
 
 def inspect(path: str, heads: int | None = None, kv_heads: int | None = None) -> dict:
@@ -82,11 +82,30 @@ def embed(path: str, text: str, batch: int = 32) -> dict:
     return {"path": str(loaded.path), "lines": lines, "embeddings": e.tolist(), "dim": e.shape[1]}
 
 
+def generate(path: str, prompts: list[str], *, max_tokens: int = 64, temperature: float = 0.0, top_p: float = 1.0,
+             seed: int = 0, batch: int = 8, quiet: bool = False) -> dict:
+    """Continue each prompt with a decoder (greedy at temperature 0); see `generate.generate_ids`."""
+    import time
+    loaded = load_model(resolve(path))
+    if not loaded.model.is_decoder:
+        raise CompressError(f"{loaded.path}: generate needs a decoder; this {loaded.shape.family} model is an encoder")
+    ids = [tokens(loaded, p) for p in prompts]
+    t0 = time.perf_counter()
+    new = gen.generate_ids(loaded.model, ids, max_tokens=max_tokens, temperature=temperature, top_p=top_p, seed=seed,
+                           batch=batch, quiet=quiet)
+    dt = time.perf_counter() - t0
+    n = sum(len(x) for x in new)
+    return {"path": str(loaded.path), "prompts": prompts, "completions": [loaded.tokenizer.decode(x) for x in new],
+            "prompt_ids": ids, "ids": new, "tokens": n, "seconds": dt, "tokens_per_second": n / dt if dt > 0 else None,
+            "settings": {"max_tokens": max_tokens, "temperature": temperature, "top_p": top_p, "seed": seed,
+                         "batch": batch}}
+
+
 # ------------------------------------------------------------------------------------ spectra and plans
 
 def spectrum(path: str, texts: list[str] | None = None, damping: float = DEFAULT_DAMPING, quiet: bool = False) -> dict:
     """All spectra and energy-kept curves of a source model (whitened when texts are given)."""
-    an = pipeline.analyse(path, texts, damping=damping, quiet=quiet)
+    an = pipeline.analyse(path, gen.resolve_texts(texts, path, quiet), damping=damping, quiet=quiet)
     layers = []
     for i, sp in enumerate(an.spectra):
         entry = {"layer": i}
@@ -103,13 +122,30 @@ def spectrum(path: str, texts: list[str] | None = None, damping: float = DEFAULT
 def plan(path: str, out: str | None, keep: float | None = None, strategy: str = DEFAULT_STRATEGY,
          texts: list[str] | None = None, damping: float = DEFAULT_DAMPING, quiet: bool = False) -> dict:
     """Choose ranks under a budget and (with `out`) write the plan JSON for the user to edit."""
-    an = pipeline.analyse(path, texts, damping=damping, quiet=quiet)
+    an = pipeline.analyse(path, gen.resolve_texts(texts, path, quiet), damping=damping, quiet=quiet)
     p = pipeline.make_rank_plan(an, keep, strategy, None)
     if out:
         from .io.write import write_json_atomic
         write_json_atomic(out, json.loads(p.to_json()))
     return {"plan": p, "summary": planlib.summary(an.loaded.shape, p)}
 
+
+
+def compress(path: str, out: str, *, texts: list[str] | None = None, quiet: bool = False, **options) -> dict:
+    """`compress.compress`, with `corpus:samples` among the texts first sampled from `path` (cached)."""
+    return pipeline.compress(path, out, texts=gen.resolve_texts(texts, path, quiet), quiet=quiet, **options)
+
+
+def tune(src_dir: str, texts: list[str], out: str, *, teacher: str | None = None, quiet: bool = False,
+         **options) -> dict:
+    """`tune.tune`, with `corpus:samples` among the texts first sampled from the source model (cached)."""
+    if any(gen.is_samples(t) for t in texts or []):
+        from .loading import read_manifest
+        if not Path(src_dir).is_dir():
+            raise CompressError(f"{src_dir}: no such directory; expected a directory written by `attncompress compress`")
+        source, _ = tunelib.find_teacher(None if teacher == "none" else teacher, Path(src_dir), read_manifest(src_dir))
+        texts = gen.resolve_texts(texts, source, quiet)
+    return tunelib.tune(src_dir, texts, out, teacher=teacher, quiet=quiet, **options)
 
 
 def compare(a: str, b: str, texts: list[str] | None = None, *, out: str | None = None, force: bool = False,

@@ -88,6 +88,32 @@ def perplexity(path, texts, context, stride, max_tokens, as_json):
 
 @main.command()
 @click.argument("path")
+@click.option("--prompt", "prompts", multiple=True, help="Text to continue (repeatable).")
+@click.option("--prompt-file", type=click.Path(), help="UTF-8 file, one prompt per line.")
+@click.option("--max-tokens", default=64, show_default=True, help="New tokens per prompt.")
+@click.option("--temperature", default=0.0, show_default=True, help="0: greedy; else the sampling temperature.")
+@click.option("--top-p", default=1.0, show_default=True, help="Sample from the smallest set of tokens with this mass.")
+@click.option("--seed", default=0, show_default=True, help="Seed of the sampling (with --batch, fixes the tokens).")
+@click.option("--batch", default=8, show_default=True, help="Prompts of one length decoded together.")
+@_out_opt("Write prompts, completions and token ids as JSON to this file.")
+@_json_opt()
+def generate(path, prompts, prompt_file, max_tokens, temperature, top_p, seed, batch, out, as_json):
+    """Continue prompts with a decoder, source or compressed (KV cache, batched); tokens/s on stderr."""
+    from .texts import read_lines
+    prompts = list(prompts) + (_run(read_lines, prompt_file) if prompt_file else [])
+    if not prompts:
+        raise click.UsageError("give --prompt TEXT or --prompt-file FILE")
+    r = _run(api.generate, path, prompts, max_tokens=max_tokens, temperature=temperature, top_p=top_p, seed=seed,
+             batch=batch)
+    click.echo(f"{r['tokens']} tokens in {r['seconds']:.1f}s ({r['tokens_per_second'] or 0:.1f} tokens/s)", err=True)
+    if out:
+        from .io.write import write_json_atomic
+        _run(write_json_atomic, out, r)
+    _emit(r, as_json, "\n\n".join(p + c for p, c in zip(r["prompts"], r["completions"])))
+
+
+@main.command()
+@click.argument("path")
 @click.option("--text", required=True, type=click.Path(), help="UTF-8 file, one sentence per line.")
 @_json_opt("Print the embeddings as JSON.")
 @_out_opt("Write the embeddings as JSON to this file.")
