@@ -250,31 +250,64 @@ def expand(path: str, out: str, force: bool = False) -> dict:
 
 # -------------------------------------------------------------------------------------------- the whole job
 
+# What `run` adds to the user's text for calibration and tuning (`--blend`): general text keeps the model
+# general when the user's text is small and of one kind (measured: benchmarks/results/, README).
+BLENDS = {"text": (), "samples": (gen.SAMPLES,), "pydoc": ("corpus:pydoc-calibration",),
+          "samples+pydoc": (gen.SAMPLES, "corpus:pydoc-calibration")}
+DEFAULT_BLEND = "samples"
+RUN_MIX = 0.5  # weight of the next-token loss in run's tune; the rest is distillation from the source
+
+
 def run(path: str, out: str, *, keep: float, texts: list[str], eval_texts: list[str] | None = None,
-        strategy: str = DEFAULT_STRATEGY, steps: int = 60, batch: int = 4, context: int = 128, lr: float = 1e-4,
-        decay: str = DEFAULT_DECAY, decay_coef: float = DEFAULT_DECAY_COEF, seed: int = 0,
-        max_eval_tokens: int | None = 4096, force: bool = False, quiet: bool = False) -> dict:
+        strategy: str = DEFAULT_STRATEGY, blend: str = DEFAULT_BLEND, steps: int = 60, batch: int = 4,
+        context: int = 128, lr: float = 1e-4, mix: float = RUN_MIX, decay: str = DEFAULT_DECAY,
+        decay_coef: float = DEFAULT_DECAY_COEF, seed: int = 0, max_eval_tokens: int | None = 4096,
+        force: bool = False, quiet: bool = False) -> dict:
     """Compress, tune and compare in one go; `out` gets `compressed/`, `tuned/` and `report/`.
 
-    The whole directory is written atomically: an error or Ctrl-C leaves nothing behind.
+    The calibration and tuning text is `texts` plus the `blend` (a key of `BLENDS`); each `eval_texts` file is
+    scored on its own for the original, the compressed and the tuned model. The whole directory is written
+    atomically: an error or Ctrl-C leaves nothing behind.
     """
+    import sys
     from .io.write import atomic_dir, check_output
+    from .progress import Timer
     from .report import write_compare
+    if blend not in BLENDS:
+        raise CompressError(f"--blend: unknown value {blend!r}; expected one of {', '.join(BLENDS)}")
     check_output(out, force)
     read_texts(texts)  # refuse unreadable text before the long work
     if eval_texts:
         read_texts(eval_texts)
+
+    def say(msg):
+        if not quiet:
+            print(f"[run] {msg}", file=sys.stderr, flush=True)
+    timer = Timer()
+    calib = list(texts) + [t for t in BLENDS[blend] if t not in texts]
+    for t in set(eval_texts or []) & set(calib):
+        say(f"warning: {t} is also calibration and tuning text; its perplexity is not a held-out figure")
+    calib = gen.resolve_texts(calib, path, quiet)
+    timer.lap("sampling")
     with atomic_dir(out, force) as tmp:
-        def say(msg):
-            if not quiet:
-                import sys
-                print(f"[run] {msg}", file=sys.stderr, flush=True)
-        say(f"1/3 compress {path} to keep {keep} of the block matrices ({strategy}, whitened by {len(texts)} text file(s))")
-        c = compress(path, str(tmp / "compressed"), keep=keep, strategy=strategy, texts=texts, quiet=quiet)
-        say(f"2/3 tune the factors for {steps} steps ({decay} decay)")
-        t = tune(tmp / "compressed", texts, tmp / "tuned", steps=steps, batch=batch, context=context, lr=lr,
-                         seed=seed, decay=decay, decay_coef=decay_coef, teacher=str(resolve(path)), quiet=quiet)
-        say("3/3 compare the original with the tuned model")
-        r = comparelib.compare(path, str(tmp / "tuned"), eval_texts or texts, max_tokens=max_eval_tokens, quiet=quiet)
+        say(f"1/3 compress {path} to keep {keep} of the block matrices ({strategy}, whitened by "
+            f"{', '.join(Path(t).name for t in calib)})")
+        c = pipeline.compress(path, str(tmp / "compressed"), keep=keep, strategy=strategy, texts=calib, quiet=quiet)
+        timer.lap("compress")
+        say(f"2/3 tune the factors for at most {steps} steps ({decay} decay, next-token weight {mix})")
+        t = tunelib.tune(tmp / "compressed", calib, tmp / "tuned", steps=steps, batch=batch, context=context, lr=lr,
+                         seed=seed, decay=decay, decay_coef=decay_coef, mix=mix, teacher=str(resolve(path)),
+                         quiet=quiet)
+        timer.lap("tune")
+        say("3/3 compare the original with the tuned model, and the compressed model before tuning")
+        scored = eval_texts or texts
+        r = comparelib.compare(path, str(tmp / "tuned"), scored, max_tokens=max_eval_tokens, quiet=quiet)
+        before = comparelib.score_model(str(tmp / "compressed"), scored, max_tokens=max_eval_tokens, quiet=quiet)
+        for entry, b in zip(r["quality"]["per_text"], before):
+            entry["compressed"] = b["perplexity"][0]
+        timer.lap("compare")
+        r["run"] = {"blend": blend, "calibration": c.get("calibration"), "tune": {
+            k: t[k] for k in ("steps", "steps_run", "heldout", "data", "warnings", "settings")},
+            "seconds": timer.stages}
         write_compare(r, str(tmp / "report"), False)
-    return {"out": str(out), "compress": c, "tune": t, "compare": r}
+    return {"out": str(out), "compress": c, "tune": t, "compare": r, "seconds": timer.stages}

@@ -236,11 +236,18 @@ def expand(path, out, force):
 @click.option("--resume", is_flag=True, help="Continue from the checkpoint of an interrupted run.")
 @click.option("--train-norms", is_flag=True, help="Also train the norm weights.")
 @click.option("--train-dense", is_flag=True, help="Also train the feed-forward matrices the plan left dense.")
+@click.option("--heldout", default=tunelib.DEFAULT_HELDOUT, show_default=True,
+              help="Fraction of the text's blocks held out; the step of the lowest held-out loss is written (0: off).")
+@click.option("--eval-every", default=tunelib.DEFAULT_EVAL_EVERY, show_default=True,
+              help="Steps between held-out evaluations.")
+@click.option("--patience", default=tunelib.DEFAULT_PATIENCE, show_default=True,
+              help="Stop after this many held-out evaluations without a new lowest loss.")
 @_force_opt("Replace --out, and a stale checkpoint, if they exist.")
 @click.option("--quiet", is_flag=True, help="No progress line.")
 @_json_opt()
 def tune(path, texts, out, steps, batch, context, lr, seed, decay, decay_coef, penalty_every, teacher, temperature,
-         mix, topk, eval_texts, eval_tokens, save_every, resume, train_norms, train_dense, force, quiet, as_json):
+         mix, topk, eval_texts, eval_tokens, save_every, resume, train_norms, train_dense, heldout, eval_every, patience,
+         force, quiet, as_json):
     """Fine-tune a compressed directory's factors on text (distilling from the source model); also under torchrun."""
     def go():
         try:
@@ -248,8 +255,9 @@ def tune(path, texts, out, steps, batch, context, lr, seed, decay, decay_coef, p
                                 decay=decay, decay_coef=decay_coef, penalty_every=penalty_every,
                                 temperature=temperature, mix=mix, teacher=teacher, topk=topk,
                                 eval_texts=list(eval_texts), eval_tokens=eval_tokens, save_every=save_every,
-                                resume=resume, train_norms=train_norms, train_dense=train_dense, force=force,
-                                quiet=quiet)
+                                resume=resume, train_norms=train_norms,
+                                train_dense=train_dense, heldout=heldout, eval_every=eval_every, patience=patience,
+                                force=force, quiet=quiet)
         except tunelib.TuneInterrupted as e:
             click.echo(str(e), err=True)
             sys.exit(130)
@@ -260,6 +268,8 @@ def tune(path, texts, out, steps, batch, context, lr, seed, decay, decay_coef, p
     lines = [f"tuned steps {r['start_step'] + 1}-{r['steps']} in {r['seconds']['train']:.1f}s "
              f"({r['tokens_per_second'] or 0:.0f} tok/s): loss {c[0]['loss']:.4f} -> {c[-1]['loss']:.4f}"
              if c and r["steps"] > r["start_step"] else "nothing left to train"]
+    from .report import tune_lines
+    lines += tune_lines(r)
     before, after = r["eval"]["before"] or {}, r["eval"]["after"] or {}
     for name in after:
         lines.append(f"held-out {name}: perplexity {before[name]['perplexity']:.3f} -> {after[name]['perplexity']:.3f}")
@@ -298,19 +308,26 @@ def compare(a, b, texts, context, stride, max_tokens, runs, threads, as_json, ou
             dest="eval_texts")
 @click.option("--strategy", type=click.Choice(list(STRATEGIES)), default=DEFAULT_STRATEGY, show_default=True,
               help="Rank allocation (uniform measured best on SmolLM2; see README).")
-@click.option("--steps", default=60, show_default=True, help="Tuning steps.")
+@click.option("--blend", type=click.Choice(list(api.BLENDS)), default=api.DEFAULT_BLEND, show_default=True,
+              help="General text added to --text for calibration and tuning: samples (text the source model writes, "
+                   "corpus:samples), pydoc (corpus:pydoc-calibration), both, or none (text).")
+@click.option("--steps", default=60, show_default=True, help="Most tuning steps (the held-out loss picks the step).")
+@click.option("--mix", default=api.RUN_MIX, show_default=True,
+              help="Weight of the next-token loss in the tune; 1 − mix goes to distillation from the source.")
 @click.option("--decay", type=click.Choice(list(tunelib.DECAYS)), default=tunelib.DEFAULT_DECAY, show_default=True,
               help="Penalty while tuning.")
 @click.option("--eval-tokens", default=4096, show_default=True, help="Tokens scored per comparison (0: all).")
 @_out_opt("Directory for compressed/, tuned/ and report/.", required=True)
 @_force_opt()
 @_json_opt("Print the comparison as JSON.")
-def run(path, keep, texts, eval_texts, strategy, steps, decay, eval_tokens, out, force, as_json):
+def run(path, keep, texts, eval_texts, strategy, blend, steps, mix, decay, eval_tokens, out, force, as_json):
     """The whole job: compress with calibration, tune the factors, compare before and after."""
-    from .report import compare_text
+    from .report import compare_text, tune_lines
     r = _run(api.run, path, out, keep=keep, texts=list(texts), eval_texts=list(eval_texts) or None, strategy=strategy,
-             steps=steps, decay=decay, max_eval_tokens=eval_tokens or None, force=force)
-    _emit(r["compare"], as_json, compare_text(r["compare"]) + f"\nwrote {out}/compressed, {out}/tuned and {out}/report")
+             blend=blend, steps=steps, mix=mix, decay=decay, max_eval_tokens=eval_tokens or None, force=force)
+    times = ", ".join(f"{k} {v:.0f}s" for k, v in r["seconds"].items())
+    _emit(r["compare"], as_json, "\n".join(tune_lines(r["tune"]) + r["tune"]["warnings"] + [
+        compare_text(r["compare"]), f"time: {times}", f"wrote {out}/compressed, {out}/tuned and {out}/report"]))
 
 
 if __name__ == "__main__":

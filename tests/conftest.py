@@ -13,6 +13,12 @@ def pytest_configure(config):
 FAMILIES = ("llama", "qwen2", "gpt2", "bert")
 
 
+@pytest.fixture(autouse=True)
+def private_sample_cache(tmp_path, monkeypatch):
+    """Model samples (corpus:samples) go to each test's own folder, never the user's cache."""
+    monkeypatch.setenv("ATTNCOMPRESS_CACHE", str(tmp_path / "sample-cache"))
+
+
 def make_reference(family: str, seed: int = 0):
     """A tiny random `transformers` model of a family: 2 layers, width 32, 4 query heads (2 kv heads for rotary)."""
     import transformers as tf

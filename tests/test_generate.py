@@ -14,12 +14,6 @@ from attncompress.loading import load_model
 PROMPTS = [[5, 17, 3], [40, 2, 9], [11], [7, 7, 7, 7, 30]]
 
 
-@pytest.fixture(autouse=True)
-def private_cache(tmp_path, monkeypatch):
-    """Every test samples into its own cache folder, never the user's."""
-    monkeypatch.setenv(gen.CACHE_ENV, str(tmp_path / "cache"))
-
-
 def _reference(directory):
     import transformers as tf
     m = tf.AutoModelForCausalLM.from_pretrained(directory).eval()
@@ -79,7 +73,7 @@ def test_samples_are_cached_and_recorded_in_the_manifest(tiny_dirs, tmp_path, mo
     settings = gen.SampleSettings(tokens=600, length=40, batch=4)
     monkeypatch.setattr(gen, "parse_samples", lambda name: settings)
     r = api.compress(str(d), str(tmp_path / "c"), keep=0.8, texts=["corpus:samples"], quiet=True)
-    files = list((tmp_path / "cache").glob("samples-*.txt"))
+    files = list((tmp_path / "sample-cache").glob("samples-*.txt"))
     assert len(files) == 1 and files[0].read_text().count("\n\n") == 14  # 15 sequences of 40 tokens
     desc = json.loads((tmp_path / "c" / "attncompress.json").read_text())["calibration"]["files"][0]
     assert desc["name"] == files[0].name
