@@ -180,7 +180,7 @@ def samples_file(model_path: str | Path, settings: SampleSettings, quiet: bool =
     """The cached sample text of a model with these settings, sampled now when it is not cached yet."""
     from .io.read import open_source
     from .loading import load_model
-    from .models import resolve
+    from .builtin import resolve
     path = resolve(model_path)
     src = open_source(path)
     files = [{"name": f.name, "sha256": _sha256(f)} for f in src.files]
