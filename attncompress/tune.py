@@ -56,7 +56,8 @@ held-out blocks; the trained tensors of the lowest held-out loss are the ones wr
 early when `patience` evaluations in a row bring no new lowest loss (a tune that memorises its text).
 
 Checkpoints go to a sibling file of the output, `.{out}.tune-checkpoint.pt` (trained tensors, AdamW state,
-step, RNG state, loss curve, held-out perplexities at the start), written to a temporary file and renamed,
+step, RNG state, loss curve, held-out perplexities at the start, the held-out curve and the best
+step's tensors), written to a temporary file and renamed,
 so an interrupted run always leaves the last complete one. `resume` checks that the settings, data, model
 and teacher are the ones that wrote it, and continues bit for bit as the uninterrupted run would (for the
 same number of processes). The checkpoint is removed once the output directory is written.

@@ -43,6 +43,7 @@ def main() -> None:
     with tempfile.TemporaryDirectory() as tmp:
         r = api.run("builtin:smollm2-135m", str(Path(tmp) / "job"), keep=a.keep, texts=texts, eval_texts=evals,
                     blend=a.blend, steps=a.steps, lr=a.lr, mix=a.mix, max_eval_tokens=a.eval_tokens)
+        manifest = json.loads((Path(tmp) / "job" / "compressed" / "attncompress.json").read_text(encoding="utf-8"))
     q, t = r["compare"]["quality"], r["tune"]
     result = {
         "command": "python " + " ".join([str(Path(sys.argv[0]).relative_to(ROOT)
@@ -57,7 +58,7 @@ def main() -> None:
         "tune": {"steps_run": t["steps_run"], "heldout": t["heldout"],
                  "texts": [{k: d[k] for k in ("name", "blocks", "heldout_blocks", "repeats")} for d in t["data"]["files"]],
                  "warnings": t["warnings"]},
-        "calibration": r["compress"].get("calibration"),
+        "calibration": manifest["calibration"],
         "seconds": r["seconds"], "total_seconds": sum(r["seconds"].values()),
     }
     out = ROOT / "benchmarks" / "results" / f"{a.name}.json"
