@@ -524,8 +524,9 @@ def _one_shot(d: Path, out: Path, keep: float, texts, n_blocks: int, context: in
 def test_streaming_equals_the_one_shot_computation(tiny_dirs, calib_file, tmp_path, family, whitened):
     d = tiny_dirs[family][0]
     texts = [str(calib_file)] if whitened else None
+    # the method the one-shot path computes: uniform ranks, down-reach output weights, no sequential pass
     pipeline.compress(d, tmp_path / "streamed", keep=0.6, texts=texts, weights_only=not whitened, quiet=True,
-                      n_blocks=12, context=32)
+                      n_blocks=12, context=32, strategy="uniform", priced=False, sequential=False)
     want = _one_shot(d, tmp_path / "one-shot.safetensors", 0.6, texts, 12, 32)
     got = load_file(str(tmp_path / "streamed" / "model.safetensors"))
     assert sorted(got) == sorted(want)
