@@ -5,6 +5,8 @@ from pathlib import Path
 import pytest
 import torch
 
+from attncompress.io.load import load_model  # noqa: F401  (the one import of the loader the tests share)
+
 
 def pytest_configure(config):
     config.addinivalue_line("markers", "slow: real-model tests (seconds to minutes); run in CI too")
@@ -13,8 +15,15 @@ def pytest_configure(config):
 FAMILIES = ("llama", "qwen2", "gpt2", "bert")
 
 
+QK_SCALE = 15.0  # query/key weights std 0.02 → 0.3: score spreads of a few units instead of about 0.01
+
+
 def make_reference(family: str, seed: int = 0):
-    """A tiny random `transformers` model of a family: 2 layers, width 32, 4 query heads (2 kv heads for rotary)."""
+    """A tiny random `transformers` model of a family: 2 layers, width 32, 4 query heads (2 kv heads for rotary).
+
+    Query/key weights are scaled by QK_SCALE so attention is peaked (as in trained models): with the default
+    initialisation every softmax row is nearly uniform, and mistakes in scores, pairs or positions barely show.
+    """
     import transformers as tf
     torch.manual_seed(seed)
     if family == "llama":
@@ -38,7 +47,21 @@ def make_reference(family: str, seed: int = 0):
         for name, p in m.named_parameters():
             if name.endswith("bias") or "norm" in name.lower():
                 p.add_(0.1 * torch.randn_like(p))
+        for p in query_key_weights(m, family):
+            p.mul_(QK_SCALE)
     return m.eval()
+
+
+def query_key_weights(m, family: str) -> list:
+    """The reference model's query and key weights (views, so they can be scaled in place)."""
+    out = []
+    for name, p in m.named_parameters():
+        if family == "gpt2" and name.endswith("attn.c_attn.weight"):
+            out.append(p[:, : 2 * p.shape[0]])  # Conv1D (d, 3d): query and key columns first
+        elif name.endswith(("q_proj.weight", "k_proj.weight", "query.weight", "key.weight")):
+            out.append(p)
+    assert len(out) == (2 if family == "gpt2" else 4), (family, len(out))  # 2 layers
+    return out
 
 
 @pytest.fixture(scope="session")
