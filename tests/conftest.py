@@ -5,7 +5,7 @@ from pathlib import Path
 import pytest
 import torch
 
-from attncompress.io.load import load_model  # noqa: F401  (the one import of the loader the tests share)
+from attncompress.io.load import load_model, load_weights  # noqa: F401  (the one import of the loader the tests share)
 
 
 def pytest_configure(config):
@@ -18,7 +18,7 @@ FAMILIES = ("llama", "qwen2", "gpt2", "bert")
 QK_SCALE = 15.0  # query/key weights std 0.02 → 0.3: score spreads of a few units instead of about 0.01
 
 
-def make_reference(family: str, seed: int = 0):
+def make_reference(family: str, seed: int = 0, vocab_size: int = 96):
     """A tiny random `transformers` model of a family: 2 layers, width 32, 4 query heads (2 kv heads for rotary).
 
     Query/key weights are scaled by QK_SCALE so attention is peaked (as in trained models): with the default
@@ -28,7 +28,7 @@ def make_reference(family: str, seed: int = 0):
     torch.manual_seed(seed)
     if family == "llama":
         cfg = tf.LlamaConfig(hidden_size=32, intermediate_size=64, num_attention_heads=4, num_key_value_heads=2,
-                             num_hidden_layers=2, vocab_size=96, rope_theta=10000.0, max_position_embeddings=128)
+                             num_hidden_layers=2, vocab_size=vocab_size, rope_theta=10000.0, max_position_embeddings=128)
         m = tf.LlamaForCausalLM(cfg)
     elif family == "qwen2":  # query/key/value biases, tied embeddings
         cfg = tf.Qwen2Config(hidden_size=32, intermediate_size=64, num_attention_heads=4, num_key_value_heads=2,
