@@ -1,5 +1,6 @@
 """Shared fixtures: tiny seeded checkpoints that the tests build and save themselves."""
 import importlib.metadata
+import os
 from pathlib import Path
 
 import pytest
@@ -96,6 +97,19 @@ def calib_file(tmp_path_factory):
     p = tmp_path_factory.mktemp("text") / "calib.txt"
     p.write_text("\n".join(" ".join(WORDS[i] for i in ids[j:j + 12]) for j in range(0, len(ids), 12)), encoding="utf-8")
     return p
+
+
+def require(found, what: str, install: str):
+    """Skip a test whose package or file is missing, except in CI (`CI=true`), where a missing one is a failure.
+
+    `found` is the path or object the test needs (None or a missing path when absent); returns it.
+    """
+    if found is not None and (not isinstance(found, Path) or found.exists()):
+        return found
+    message = f"{what} is missing ({install})"
+    if os.environ.get("CI") == "true":
+        pytest.fail(f"{message}; CI must run this test", pytrace=False)
+    pytest.skip(message)
 
 
 def smollm2_path():

