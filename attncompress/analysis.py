@@ -19,6 +19,7 @@ from dataclasses import dataclass
 import torch
 
 from . import factorize as fz
+from .factorize import Roots
 from .model import Transformer
 from .progress import Progress
 from .shape import ModelShape
@@ -131,17 +132,6 @@ def output_weights(sens: torch.Tensor, down: torch.Tensor) -> torch.Tensor:
     return s.clamp_min(1e-12).sqrt()  # a dead channel keeps a tiny weight so the map stays invertible
 
 
-@dataclass
-class Roots:
-    """Whitening factors of one layer's inputs (G_damped = L Lᵀ), or None for weight-only spectra."""
-    attn: tuple[torch.Tensor, torch.Tensor] | None  # (L, L⁻¹) for x, (d, d)
-    attn_aug: tuple[torch.Tensor, torch.Tensor] | None  # for [x; 1], (d+1, d+1); non-rotary query side
-    ff: tuple[torch.Tensor, torch.Tensor] | None
-    down: tuple[torch.Tensor, torch.Tensor] | None
-    up_out: torch.Tensor | None = None  # (f,) output-channel weights of the up matrix (`output_weights`)
-    gate_out: torch.Tensor | None = None  # (f,) the same for gate
-
-
 def layer_roots(stats: LayerStats | None, damping: float, with_bias_row: bool = False,
                 down: torch.Tensor | None = None) -> Roots:
     """Damped Cholesky roots of one layer's Gram matrices (see `factorize.gram_root` for the damping).
@@ -165,11 +155,6 @@ def layer_roots(stats: LayerStats | None, damping: float, with_bias_row: bool = 
 def ff_target(w: torch.Tensor, out_w: torch.Tensor | None) -> torch.Tensor:
     """The matrix whose truncation is optimal for the weighted objective: diag(out_w) W, or W."""
     return w.double() if out_w is None else out_w[:, None] * w.double()
-
-
-def head_slices(w: torch.Tensor, n: int) -> list[torch.Tensor]:
-    """Split a (n*hd, d) projection into n head blocks (hd, d). Example: (8, 3), n=2 → two (4, 3)."""
-    return list(w.reshape(n, -1, w.shape[-1]).unbind(0))
 
 
 def pair_scores(shape: ModelShape, wq: torch.Tensor, wk: torch.Tensor, root=None) -> torch.Tensor:
@@ -207,26 +192,24 @@ def layer_spectra(shape: ModelShape, w: dict[str, torch.Tensor], layer: int, roo
         out["qk"] = {"values": vals, "gains": vals.pow(2).sum(0), "scores": sc}
     else:
         bq = w.get(p + "attn.q.bias")
+        left, right = roots.qk_sides(bq is not None)
         svs = []
-        for h, (q_h, k_h) in enumerate(zip(head_slices(wq, shape.n_heads), head_slices(wk, shape.n_kv_heads))):
-            m = fz.qk_bias_form(q_h, None if bq is None else bq.reshape(shape.n_heads, -1)[h], k_h)
-            left = roots.attn_aug if bq is not None else roots.attn
+        for m in fz.qk_forms(wq, bq, wk, shape.n_heads, shape.n_kv_heads):  # (d[+1], d) each
             if left is not None:
-                m = left[0].T @ m @ roots.attn[0]  # Lᵀ M L: the bilinear form in whitened coordinates
+                m = left[0].T @ m @ right[0]  # Lᵀ M L: the bilinear form in whitened coordinates
             svs.append(torch.linalg.svdvals(m)[: shape.head_dim])
         vals = torch.stack(svs)  # (h, hd)
         out["qk"] = {"values": vals, "gains": vals.pow(2).sum(0)}
     l_attn = roots.attn[0] if roots.attn is not None else None
     svs = []
-    for g, v_g in enumerate(head_slices(wv, shape.n_kv_heads)):
-        heads = [wo[:, (g * shape.q_per_kv + j) * shape.head_dim:(g * shape.q_per_kv + j + 1) * shape.head_dim]
-                 for j in range(shape.q_per_kv)]
+    for v_g, heads in zip(fz.head_slices(wv, shape.n_kv_heads),
+                          fz.group_output_heads(wo, shape.n_kv_heads, shape.q_per_kv)):
         svs.append(fz.vo_group_singular_values(v_g, heads, l_attn))
     vals = torch.stack(svs)  # (g, hd)
     out["vo"] = {"values": vals, "gains": vals.pow(2).sum(0)}
-    for kind in (("gate", "up", "down") if shape.gated else ("up", "down")):
-        root = roots.down if kind == "down" else roots.ff
-        target = ff_target(w[p + f"ff.{kind}.weight"], getattr(roots, f"{kind}_out", None))
+    for kind in shape.ff_kinds:
+        root, out_w = roots.ff_sides(kind)
+        target = ff_target(w[p + f"ff.{kind}.weight"], out_w)
         s = fz.singular_values(target, None if root is None else root[0])
         out[kind] = {"values": s[None], "gains": s.pow(2)}
     return out

@@ -1,24 +1,23 @@
 """The Python API: one function per command, each returning a plain report dict."""
 from __future__ import annotations
 
-import hashlib
 import json
-from dataclasses import dataclass
 from pathlib import Path
 
 import torch
 
-from . import analysis, evaluate
+from . import analysis, evaluate, factorize as fz
 from . import plan as planlib
-from .progress import Progress
+from . import compare as comparelib
 from . import compress as pipeline
 from .compress import compress  # noqa: F401  (the API's compress)
 from .errors import CompressError
-from .io.load import load_model, load_weights, tokens
-from .models import resolve
+from .factorize import DEFAULT_DAMPING
+from .loading import load_model, load_weights, tokens
+from .builtin import resolve
+from .strategies import DEFAULT_STRATEGY
 from .texts import read_lines, read_texts
-
-
+from .tune import DEFAULT_DECAY, DEFAULT_DECAY_COEF, tune  # noqa: F401  (the API's tune)
 
 
 def inspect(path: str, heads: int | None = None, kv_heads: int | None = None) -> dict:
@@ -41,7 +40,7 @@ def inspect(path: str, heads: int | None = None, kv_heads: int | None = None) ->
             "vo": {"groups": shape.n_kv_heads, "heads_per_group": shape.q_per_kv, "width": v.shape[0] // shape.n_kv_heads},
             "ff": {},
         }
-        for m in (("gate", "up", "down") if shape.gated else ("up", "down")):
+        for m in shape.ff_kinds:
             if p + f"ff.{m}.a" in weights:
                 a, b = weights[p + f"ff.{m}.a"], weights[p + f"ff.{m}.b"]
                 entry["ff"][m] = {"shape": [a.shape[0], b.shape[0]], "rank": a.shape[1]}
@@ -53,18 +52,8 @@ def inspect(path: str, heads: int | None = None, kv_heads: int | None = None) ->
         "model_type": (source.config or {}).get("model_type"), "shape": shape.__dict__.copy(),
         "parameters": evaluate.param_groups(weights), "block_matrix_parameters": evaluate.block_matrix_params(weights),
         "dtypes": source.dtypes(), "layers": layers, "unused": walk.unused if walk else [],
-        "kv_bytes_per_token": kv_bytes_per_token(shape, weights) if shape.family != "bert" else None,
+        "kv_bytes_per_token": evaluate.kv_bytes_per_token(shape, weights) if shape.is_decoder else None,
     }
-
-
-def kv_bytes_per_token(shape, weights, bytes_per_element: int = 4) -> int:
-    """Key and value bytes one token adds to the cache: Σ_layers g·(w_qk + w_vo)·bytes."""
-    total = 0
-    for i in range(shape.n_layers):
-        q = weights[f"layers.{i}.attn.q.weight"]
-        v = weights[f"layers.{i}.attn.v.weight"]
-        total += shape.n_kv_heads * (q.shape[0] // shape.n_heads + v.shape[0] // shape.n_kv_heads)
-    return total * bytes_per_element
 
 
 def perplexity(path: str, texts: list[str], context: int = 512, stride: int | None = None,
@@ -95,7 +84,7 @@ def embed(path: str, text: str, batch: int = 32) -> dict:
 
 # ------------------------------------------------------------------------------------ spectra and plans
 
-def spectrum(path: str, texts: list[str] | None = None, damping: float = 0.01, quiet: bool = False) -> dict:
+def spectrum(path: str, texts: list[str] | None = None, damping: float = DEFAULT_DAMPING, quiet: bool = False) -> dict:
     """All spectra and energy-kept curves of a source model (whitened when texts are given)."""
     an = pipeline.analyse(path, texts, damping=damping, quiet=quiet)
     layers = []
@@ -111,17 +100,26 @@ def spectrum(path: str, texts: list[str] | None = None, damping: float = 0.01, q
             "damping": damping, "calibration": an.calibration, "layers": layers}
 
 
-def plan(path: str, out: str | None, keep: float | None = None, strategy: str = "uniform",
-         texts: list[str] | None = None, damping: float = 0.01, quiet: bool = False) -> dict:
+def plan(path: str, out: str | None, keep: float | None = None, strategy: str = DEFAULT_STRATEGY,
+         texts: list[str] | None = None, damping: float = DEFAULT_DAMPING, quiet: bool = False) -> dict:
     """Choose ranks under a budget and (with `out`) write the plan JSON for the user to edit."""
     an = pipeline.analyse(path, texts, damping=damping, quiet=quiet)
     p = pipeline.make_rank_plan(an, keep, strategy, None)
     if out:
         from .io.write import write_json_atomic
-        import json
         write_json_atomic(out, json.loads(p.to_json()))
     return {"plan": p, "summary": planlib.summary(an.loaded.shape, p)}
 
+
+
+def compare(a: str, b: str, texts: list[str] | None = None, *, out: str | None = None, force: bool = False,
+            **options) -> dict:
+    """Model A against model B (see `compare.compare` for the options and the report); with `out`, the output
+    directory is checked before the slow part (write it with `report.write_compare`)."""
+    if out:
+        from .io.write import check_output
+        check_output(out, force)
+    return comparelib.compare(a, b, texts, **options)
 
 
 # ----------------------------------------------------------------------------------------------------- expand
@@ -150,7 +148,7 @@ def densify(shape, weights: dict) -> dict:
         pairs = weights.get(p + "pairs")
         w_qk = out[p + "q.weight"].shape[0] // h
         if pairs is not None:
-            dims = torch.cat([pairs, pairs + hd // 2], dim=1)  # (g, 2p) kept rows per group
+            dims = fz.pair_dims(pairs, hd)  # (g, 2p) kept rows per group
         else:
             dims = torch.arange(w_qk).expand(g, -1)  # refactorised heads fill their first w_qk rows
         rep = h // g
@@ -180,7 +178,7 @@ def expand(path: str, out: str, force: bool = False) -> dict:
     """Multiply a compressed directory back into a dense model directory of the source family's layout."""
     import dataclasses
     from . import arch
-    from .io.load import is_compressed
+    from .loading import is_compressed
     from .io.write import atomic_dir, check_output, dumps, save_tensors
     check_output(out, force)
     if not is_compressed(path):
@@ -217,14 +215,13 @@ def expand(path: str, out: str, force: bool = False) -> dict:
 # -------------------------------------------------------------------------------------------- the whole job
 
 def run(path: str, out: str, *, keep: float, texts: list[str], eval_texts: list[str] | None = None,
-        strategy: str = "uniform", steps: int = 60, batch: int = 4, context: int = 128, lr: float = 1e-4,
-        decay: str = "frobenius", decay_coef: float = 1e-8, seed: int = 0, max_eval_tokens: int | None = 4096, force: bool = False,
-        quiet: bool = False) -> dict:
+        strategy: str = DEFAULT_STRATEGY, steps: int = 60, batch: int = 4, context: int = 128, lr: float = 1e-4,
+        decay: str = DEFAULT_DECAY, decay_coef: float = DEFAULT_DECAY_COEF, seed: int = 0,
+        max_eval_tokens: int | None = 4096, force: bool = False, quiet: bool = False) -> dict:
     """Compress, tune and compare in one go; `out` gets `compressed/`, `tuned/` and `report/`.
 
     The whole directory is written atomically: an error or Ctrl-C leaves nothing behind.
     """
-    from . import compare as comparelib, tune as tunelib
     from .io.write import atomic_dir, check_output
     from .report import write_compare
     check_output(out, force)
@@ -239,7 +236,7 @@ def run(path: str, out: str, *, keep: float, texts: list[str], eval_texts: list[
         say(f"1/3 compress {path} to keep {keep} of the block matrices ({strategy}, whitened by {len(texts)} text file(s))")
         c = compress(path, str(tmp / "compressed"), keep=keep, strategy=strategy, texts=texts, quiet=quiet)
         say(f"2/3 tune the factors for {steps} steps ({decay} decay)")
-        t = tunelib.tune(tmp / "compressed", texts, tmp / "tuned", steps=steps, batch=batch, context=context, lr=lr,
+        t = tune(tmp / "compressed", texts, tmp / "tuned", steps=steps, batch=batch, context=context, lr=lr,
                          seed=seed, decay=decay, decay_coef=decay_coef, teacher=str(resolve(path)), quiet=quiet)
         say("3/3 compare the original with the tuned model")
         r = comparelib.compare(path, str(tmp / "tuned"), eval_texts or texts, max_tokens=max_eval_tokens, quiet=quiet)

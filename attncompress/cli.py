@@ -11,8 +11,11 @@ os.environ.setdefault("OMP_WAIT_POLICY", "PASSIVE")
 
 import click  # noqa: E402
 
-from . import api
+from . import api, compress as pipeline, tune as tunelib
 from .errors import CompressError
+from .factorize import DEFAULT_DAMPING
+from .io.write import DEFAULT_SHARD_SIZE
+from .strategies import DEFAULT_STRATEGY, STRATEGIES
 
 
 def _run(fn, *args, **kwargs):
@@ -30,6 +33,23 @@ def _emit(report: dict, as_json: bool, text: str) -> None:
     click.echo(json.dumps(report, indent=2, default=str) if as_json else text)
 
 
+# Options several commands share; the help says what each command makes of them.
+def _out_opt(help: str, required: bool = False):
+    return click.option("--out", required=required, type=click.Path(), help=help)
+
+
+def _force_opt(help: str = "Replace --out if it exists."):
+    return click.option("--force", is_flag=True, help=help)
+
+
+def _json_opt(help: str = "Print the report as JSON."):
+    return click.option("--json", "as_json", is_flag=True, help=help)
+
+
+def _texts_opt(help: str, required: bool = False, name: str = "--text", dest: str = "texts"):
+    return click.option(name, dest, multiple=True, required=required, type=click.Path(), help=help)
+
+
 @click.group(context_settings={"help_option_names": ["-h", "--help"]})
 @click.version_option(package_name="attncompress")
 def main():
@@ -42,7 +62,7 @@ def main():
 
 @main.command()
 @click.argument("path")
-@click.option("--json", "as_json", is_flag=True, help="Print the report as JSON.")
+@_json_opt()
 @click.option("--heads", type=int, help="Query heads, for a bare .safetensors file with no config.json.")
 @click.option("--kv-heads", type=int, help="Key/value heads, for a bare .safetensors file (default: --heads).")
 def inspect(path, as_json, heads, kv_heads):
@@ -54,12 +74,12 @@ def inspect(path, as_json, heads, kv_heads):
 
 @main.command()
 @click.argument("path")
-@click.option("--text", "texts", multiple=True, required=True, type=click.Path(), help="UTF-8 text file (repeatable).")
+@_texts_opt("UTF-8 text file (repeatable).", required=True)
 @click.option("--context", default=512, show_default=True, help="Tokens per window.")
 @click.option("--stride", type=int, help="Tokens scored per window after the first (at most --context - 1); smaller "
               "gives each prediction more earlier text. [default: --context]")
 @click.option("--max-tokens", type=int, help="Score only the first N tokens of the stream.")
-@click.option("--json", "as_json", is_flag=True, help="Print the report as JSON.")
+@_json_opt()
 def perplexity(path, texts, context, stride, max_tokens, as_json):
     """Token-level perplexity of a decoder over the concatenated text files."""
     r = _run(api.perplexity, path, list(texts), context, stride, max_tokens)
@@ -70,8 +90,8 @@ def perplexity(path, texts, context, stride, max_tokens, as_json):
 @main.command()
 @click.argument("path")
 @click.option("--text", required=True, type=click.Path(), help="UTF-8 file, one sentence per line.")
-@click.option("--json", "as_json", is_flag=True, help="Print the embeddings as JSON.")
-@click.option("--out", type=click.Path(), help="Write the embeddings as JSON to this file.")
+@_json_opt("Print the embeddings as JSON.")
+@_out_opt("Write the embeddings as JSON to this file.")
 def embed(path, text, as_json, out):
     """Mean-pooled sentence embeddings of an encoder."""
     r = _run(api.embed, path, text)
@@ -83,9 +103,8 @@ def embed(path, text, as_json, out):
         _emit(r, as_json, f"{len(r['lines'])} embeddings of width {r['dim']} (use --json or --out to see them)")
 
 
-_text_opt = click.option("--text", "texts", multiple=True, type=click.Path(),
-                         help="Calibration text file (repeatable); makes the spectra activation-aware (whitened).")
-_damp_opt = click.option("--damping", default=0.01, show_default=True,
+_text_opt = _texts_opt("Calibration text file (repeatable); makes the spectra activation-aware (whitened).")
+_damp_opt = click.option("--damping", default=DEFAULT_DAMPING, show_default=True,
                          help="Whitening damping, relative to the mean diagonal of each input Gram matrix.")
 
 
@@ -93,8 +112,8 @@ _damp_opt = click.option("--damping", default=0.01, show_default=True,
 @click.argument("path")
 @_text_opt
 @_damp_opt
-@click.option("--out", required=True, type=click.Path(), help="Directory for spectra.json, summary.md and plots.")
-@click.option("--force", is_flag=True, help="Replace --out if it exists.")
+@_out_opt("Directory for spectra.json, summary.md and plots.", required=True)
+@_force_opt()
 def spectrum(path, texts, damping, out, force):
     """Singular values of every QK/VO product and feed-forward matrix, and energy kept per rank."""
     from .report import write_spectrum
@@ -104,7 +123,7 @@ def spectrum(path, texts, damping, out, force):
 
 
 _keep_opt = click.option("--keep", type=float, help="Fraction of transformer-block matrix parameters to keep, in (0, 1].")
-_strategy_opt = click.option("--strategy", type=click.Choice(["uniform", "energy", "global"]), default="uniform",
+_strategy_opt = click.option("--strategy", type=click.Choice(list(STRATEGIES)), default=DEFAULT_STRATEGY,
                              show_default=True, help="How ranks are shared out under the budget.")
 
 
@@ -114,8 +133,8 @@ _strategy_opt = click.option("--strategy", type=click.Choice(["uniform", "energy
 @_strategy_opt
 @_text_opt
 @_damp_opt
-@click.option("--out", type=click.Path(), help="Write the plan JSON here (edit it and pass it to compress --plan).")
-@click.option("--json", "as_json", is_flag=True, help="Print the summary as JSON.")
+@_out_opt("Write the plan JSON here (edit it and pass it to compress --plan).")
+@_json_opt("Print the summary as JSON.")
 def plan(path, keep, strategy, texts, damping, out, as_json):
     """Choose ranks per layer under a --keep budget, without writing a model."""
     r = _run(api.plan, path, out, keep, strategy, list(texts) or None, damping)
@@ -131,13 +150,15 @@ def plan(path, keep, strategy, texts, damping, out, as_json):
 @_text_opt
 @click.option("--weights-only", is_flag=True, help="Plain SVD of the weights, no calibration text (risky: see the warning).")
 @_damp_opt
-@click.option("--out", required=True, type=click.Path(), help="Directory to write.")
-@click.option("--force", is_flag=True, help="Replace --out if it exists.")
-@click.option("--calib-blocks", default=256, show_default=True, help="Calibration passages to use at most.")
-@click.option("--calib-context", default=128, show_default=True, help="Tokens per calibration passage.")
-@click.option("--shard-size", default="2GB", show_default=True,
+@_out_opt("Directory to write.", required=True)
+@_force_opt()
+@click.option("--calib-blocks", default=pipeline.CALIB_BLOCKS, show_default=True,
+              help="Calibration passages to use at most.")
+@click.option("--calib-context", default=pipeline.CALIB_CONTEXT, show_default=True,
+              help="Tokens per calibration passage.")
+@click.option("--shard-size", default=DEFAULT_SHARD_SIZE, show_default=True,
               help="Largest safetensors file to write; a bigger model is split into shards with an index.")
-@click.option("--json", "as_json", is_flag=True, help="Print the report as JSON.")
+@_json_opt()
 def compress(path, keep, plan_file, strategy, texts, weights_only, damping, out, force, calib_blocks, calib_context, shard_size,
              as_json):
     """Cut ranks under a budget and write a smaller checkpoint."""
@@ -156,8 +177,8 @@ def compress(path, keep, plan_file, strategy, texts, weights_only, damping, out,
 
 @main.command()
 @click.argument("path")
-@click.option("--out", required=True, type=click.Path(), help="Dense model directory to write.")
-@click.option("--force", is_flag=True, help="Replace --out if it exists.")
+@_out_opt("Dense model directory to write.", required=True)
+@_force_opt()
 def expand(path, out, force):
     """Multiply a compressed directory's factors back into a dense model directory of the source layout."""
     r = _run(api.expand, path, out, force)
@@ -166,43 +187,39 @@ def expand(path, out, force):
 
 @main.command()
 @click.argument("path")
-@click.option("--text", "texts", multiple=True, required=True, type=click.Path(), help="Training text file (repeatable).")
-@click.option("--out", required=True, type=click.Path(), help="Tuned directory to write.")
+@_texts_opt("Training text file (repeatable).", required=True)
+@_out_opt("Tuned directory to write.", required=True)
 @click.option("--steps", default=100, show_default=True, help="Optimiser steps.")
 @click.option("--batch", default=4, show_default=True, help="Blocks per step, over all processes.")
 @click.option("--context", default=128, show_default=True, help="Tokens per block.")
 @click.option("--lr", default=1e-4, show_default=True, help="Peak learning rate (warm-up, then cosine).")
 @click.option("--seed", default=0, show_default=True, help="Seed of the data order.")
-@click.option("--decay", type=click.Choice(["frobenius", "factor", "none"]), default="factor", show_default=True,
+@click.option("--decay", type=click.Choice(list(tunelib.DECAYS)), default=tunelib.DEFAULT_DECAY, show_default=True,
               help="frobenius: λ·Σ‖A Bᵀ‖² over the factor pairs (mind its scale: see the README); factor: AdamW "
                    "weight decay on the factors.")
-@click.option("--decay-coef", default=0.01, show_default=True, help="λ of --decay.")
-@click.option("--penalty-every", default=4, show_default=True,
+@click.option("--decay-coef", default=tunelib.DEFAULT_DECAY_COEF, show_default=True, help="λ of --decay.")
+@click.option("--penalty-every", default=tunelib.DEFAULT_PENALTY_EVERY, show_default=True,
               help="Evaluate the Frobenius penalty every N steps, weighted N·λ (lazy regularisation).")
 @click.option("--teacher", help="Distil from this model, or 'none'. [default: the source model in the manifest]")
-@click.option("--temperature", default=1.0, show_default=True, help="Distillation temperature T.")
-@click.option("--mix", default=0.5, show_default=True,
+@click.option("--temperature", default=tunelib.DEFAULT_TEMPERATURE, show_default=True, help="Distillation temperature T.")
+@click.option("--mix", default=tunelib.DEFAULT_MIX, show_default=True,
               help="Weight of the next-token loss; 1 − mix goes to T²·KL(teacher ‖ student).")
-@click.option("--topk", default=64, show_default=True, help="Teacher tokens cached per position for the KL.")
-@click.option("--eval-text", "eval_texts", multiple=True, type=click.Path(),
-              help="Held-out text file (repeatable): perplexity before and after.")
+@click.option("--topk", default=tunelib.DEFAULT_TOPK, show_default=True, help="Teacher tokens cached per position for the KL.")
+@_texts_opt("Held-out text file (repeatable): perplexity before and after.", name="--eval-text", dest="eval_texts")
 @click.option("--eval-tokens", type=int, help="Score at most N tokens of each --eval-text.")
 @click.option("--save-every", default=100, show_default=True, help="Checkpoint every N steps (0: never).")
 @click.option("--resume", is_flag=True, help="Continue from the checkpoint of an interrupted run.")
 @click.option("--train-norms", is_flag=True, help="Also train the norm weights.")
 @click.option("--train-dense", is_flag=True, help="Also train the feed-forward matrices the plan left dense.")
-@click.option("--force", is_flag=True, help="Replace --out, and a stale checkpoint, if they exist.")
+@_force_opt("Replace --out, and a stale checkpoint, if they exist.")
 @click.option("--quiet", is_flag=True, help="No progress line.")
-@click.option("--json", "as_json", is_flag=True, help="Print the report as JSON.")
+@_json_opt()
 def tune(path, texts, out, steps, batch, context, lr, seed, decay, decay_coef, penalty_every, teacher, temperature,
          mix, topk, eval_texts, eval_tokens, save_every, resume, train_norms, train_dense, force, quiet, as_json):
     """Fine-tune a compressed directory's factors on text (distilling from the source model); also under torchrun."""
-    import os
-    from . import tune as tunelib
-
     def go():
         try:
-            return tunelib.tune(path, list(texts), out, steps=steps, batch=batch, context=context, lr=lr, seed=seed,
+            return api.tune(path, list(texts), out, steps=steps, batch=batch, context=context, lr=lr, seed=seed,
                                 decay=decay, decay_coef=decay_coef, penalty_every=penalty_every,
                                 temperature=temperature, mix=mix, teacher=teacher, topk=topk,
                                 eval_texts=list(eval_texts), eval_tokens=eval_tokens, save_every=save_every,
@@ -228,8 +245,7 @@ def tune(path, texts, out, steps, batch, context, lr, seed, decay, decay_coef, p
 @main.command()
 @click.argument("a")
 @click.argument("b")
-@click.option("--text", "texts", multiple=True, type=click.Path(),
-              help="Text file (repeatable): perplexity of decoders; for encoders one sentence per line.")
+@_texts_opt("Text file (repeatable): perplexity of decoders; for encoders one sentence per line.")
 @click.option("--context", default=512, show_default=True, help="Tokens per perplexity window.")
 @click.option("--stride", type=int, help="Tokens scored per perplexity window after the first (at most --context - 1). "
               "[default: --context]")
@@ -237,19 +253,15 @@ def tune(path, texts, out, steps, batch, context, lr, seed, decay, decay_coef, p
 @click.option("--runs", default=5, show_default=True, help="Timed runs per speed figure (median); 0 skips speed.")
 @click.option("--threads", type=int, help="Threads for the speed measurement [default: torch's]; on cores shared "
               "with other jobs set OMP_WAIT_POLICY=PASSIVE too.")
-@click.option("--json", "as_json", is_flag=True, help="Print the report as JSON (schema attncompress.compare/1).")
-@click.option("--out", type=click.Path(), help="Write compare.json, report.md and PNG plots to this directory.")
-@click.option("--force", is_flag=True, help="Replace --out if it exists.")
+@_json_opt("Print the report as JSON (schema attncompress.compare/1).")
+@_out_opt("Write compare.json, report.md and PNG plots to this directory.")
+@_force_opt()
 @click.option("--quiet", is_flag=True, help="No progress lines.")
 def compare(a, b, texts, context, stride, max_tokens, runs, threads, as_json, out, force, quiet):
     """Model A against model B: size, KV cache, perplexity or embedding agreement, and speed side by side."""
-    from . import compare as comparelib
     from .report import compare_text, write_compare
-    if out:
-        from .io.write import check_output
-        _run(check_output, out, force)  # refuse before the slow part
-    r = _run(comparelib.compare, a, b, list(texts) or None, context=context, stride=stride, max_tokens=max_tokens,
-             speed_runs=runs, threads=threads, quiet=quiet)
+    r = _run(api.compare, a, b, list(texts) or None, out=out, force=force, context=context, stride=stride,
+             max_tokens=max_tokens, speed_runs=runs, threads=threads, quiet=quiet)
     note = _run(write_compare, r, out, force) if out else None
     _emit(r, as_json, compare_text(r) + (f"\nwrote {out}/report.md and {out}/compare.json; {note}" if out else ""))
 
@@ -257,19 +269,18 @@ def compare(a, b, texts, context, stride, max_tokens, runs, threads, as_json, ou
 @main.command()
 @click.argument("path")
 @click.option("--keep", type=float, required=True, help="Fraction of transformer-block matrix parameters to keep, in (0, 1].")
-@click.option("--text", "texts", multiple=True, required=True, type=click.Path(),
-              help="Calibration and tuning text (repeatable; a file or corpus:NAME).")
-@click.option("--eval-text", "eval_texts", multiple=True, type=click.Path(),
-              help="Held-out text for the comparison (repeatable); default: the calibration text.")
-@click.option("--strategy", type=click.Choice(["uniform", "energy", "global"]), default="uniform", show_default=True,
+@_texts_opt("Calibration and tuning text (repeatable; a file or corpus:NAME).", required=True)
+@_texts_opt("Held-out text for the comparison (repeatable); default: the calibration text.", name="--eval-text",
+            dest="eval_texts")
+@click.option("--strategy", type=click.Choice(list(STRATEGIES)), default=DEFAULT_STRATEGY, show_default=True,
               help="Rank allocation (uniform measured best on SmolLM2; see README).")
 @click.option("--steps", default=60, show_default=True, help="Tuning steps.")
-@click.option("--decay", type=click.Choice(["frobenius", "factor", "none"]), default="frobenius", show_default=True,
+@click.option("--decay", type=click.Choice(list(tunelib.DECAYS)), default=tunelib.DEFAULT_DECAY, show_default=True,
               help="Penalty while tuning.")
 @click.option("--eval-tokens", default=4096, show_default=True, help="Tokens scored per comparison (0: all).")
-@click.option("--out", required=True, type=click.Path(), help="Directory for compressed/, tuned/ and report/.")
-@click.option("--force", is_flag=True, help="Replace --out if it exists.")
-@click.option("--json", "as_json", is_flag=True, help="Print the comparison as JSON.")
+@_out_opt("Directory for compressed/, tuned/ and report/.", required=True)
+@_force_opt()
+@_json_opt("Print the comparison as JSON.")
 def run(path, keep, texts, eval_texts, strategy, steps, decay, eval_tokens, out, force, as_json):
     """The whole job: compress with calibration, tune the factors, compare before and after."""
     from .report import compare_text

@@ -10,7 +10,6 @@ from __future__ import annotations
 
 import math
 import statistics
-import time
 from contextlib import contextmanager
 from dataclasses import dataclass
 
@@ -19,9 +18,10 @@ import torch.nn.functional as F
 
 from . import evaluate
 from .errors import CompressError
-from .io.load import Loaded, load_weights
+from .loading import Loaded, load_weights
 from .model import KVCache, Transformer, build
-from .models import resolve
+from .builtin import resolve
+from .progress import seconds
 from .texts import read_lines, read_texts
 
 SCHEMA = "attncompress.compare/1"
@@ -52,7 +52,6 @@ def _open(path: str, label: str) -> _Model:
 
 def model_facts(ld: Loaded, weights: dict) -> dict:
     """Counts of one model: parameters, bytes of its weight files, KV-cache bytes per token, the plan."""
-    from .api import kv_bytes_per_token
     files = [{"name": f.name, "bytes": f.stat().st_size} for f in ld.source.files]
     quantised = ld.source.format == "gguf" and any(dt not in ("F32", "F16", "BF16", "F64")
                                                      for dt in ld.source.dtypes())
@@ -70,7 +69,7 @@ def model_facts(ld: Loaded, weights: dict) -> dict:
                  "note": ("quantised on disk; dequantised to float32 to run, so disk bytes understate memory"
                           if quantised else None)},
         "runtime_bytes": sum(p.numel() * p.element_size() for p in ld.model.parameters()),
-        "kv_bytes_per_token": kv_bytes_per_token(ld.shape, weights) if ld.model.is_decoder else None,
+        "kv_bytes_per_token": evaluate.kv_bytes_per_token(ld.shape, weights) if ld.model.is_decoder else None,
         "plan": None if plan is None else {"strategy": plan.get("strategy"), "keep": plan.get("keep"),
                                             "layers": plan.get("layers"), "full": _full_ranks(ld.shape)},
         "method": (ld.manifest or {}).get("method"),
@@ -79,9 +78,8 @@ def model_facts(ld: Loaded, weights: dict) -> dict:
 
 def _full_ranks(shape) -> dict:
     """The most units each kind of matrix can keep: rotary pairs or rank for qk, rank for vo and feed-forward."""
-    from .plan import ff_kinds
     return {"qk": shape.n_pairs if shape.rotary else shape.head_dim, "vo": shape.head_dim,
-            **{k: min(shape.d_model, shape.d_ff) for k in ff_kinds(shape)}}
+            **{k: min(shape.d_model, shape.d_ff) for k in shape.ff_kinds}}
 
 
 def _ratio(b, a):
@@ -202,11 +200,7 @@ def measure_bandwidth(megabytes: int = 256, runs: int = 5, buffer: torch.Tensor 
     """
     x = buffer if buffer is not None else torch.ones(megabytes * (1 << 20) // 4)  # (n,) float32, pages mapped
     x.sum()
-    ts = []
-    for _ in range(runs):
-        t0 = time.perf_counter()
-        x.sum()
-        ts.append(time.perf_counter() - t0)
+    ts = [seconds(x.sum) for _ in range(runs)]
     return x.numel() * x.element_size() / statistics.median(ts)
 
 
@@ -220,7 +214,7 @@ def decode_bytes(model: Transformer, cached: int) -> int:
             if name not in ("tokens", "positions", "types"))
     if model.is_decoder and model.lm_head is None:
         n += model.tokens.numel() * model.tokens.element_size()  # the tied output head
-    kv = sum(blk.attn.n_kv_heads * (blk.attn.w_qk + blk.attn.w_vo) for blk in model.blocks) * 4  # float32 cache
+    kv = model.shape.kv_bytes(model.kv_widths)  # float32 cache
     return n + kv * cached
 
 
@@ -228,13 +222,6 @@ def prefill(model: Transformer, ids: torch.Tensor, cache: KVCache) -> torch.Tens
     """Process a prompt into the cache and return the logits of its last position only: (b, 1, vocab)."""
     x = model.hidden(ids, cache=cache, start=0)  # (b, s, d)
     return model.logits(x[:, -1:])  # generation needs only the next token's distribution
-
-
-def _time(fn) -> float:
-    """Seconds one call of fn takes."""
-    t0 = time.perf_counter()
-    fn()
-    return time.perf_counter() - t0
 
 
 def time_decoders(models: list[Transformer], runs: int = RUNS, prompt_tokens: int = PROMPT_TOKENS,
@@ -258,13 +245,13 @@ def time_decoders(models: list[Transformer], runs: int = RUNS, prompt_tokens: in
     def run(order: list[int], record: bool):
         caches = {j: KVCache(models[j], 1, prompt_tokens + decode_tokens) for j in order}
         for j in order:
-            tp = _time(lambda: prefill(models[j], ids[:, :prompt_tokens], caches[j]))
+            tp = seconds(lambda: prefill(models[j], ids[:, :prompt_tokens], caches[j]))
             if record:
                 out["prompt"][j].append(tp)
         steps = {j: 0.0 for j in order}
         for i in range(prompt_tokens, prompt_tokens + decode_tokens):
             for j in order:
-                steps[j] += _time(lambda: models[j](ids[:, i:i + 1], cache=caches[j], start=i))  # (1, 1, vocab)
+                steps[j] += seconds(lambda: models[j](ids[:, i:i + 1], cache=caches[j], start=i))  # (1, 1, vocab)
         if record:
             for j in order:
                 out["decode"][j].append(steps[j] / decode_tokens)
@@ -288,7 +275,7 @@ def time_encoders(models: list[Transformer], ids: torch.Tensor, mask: torch.Tens
         for r in range(runs):
             order = range(len(models)) if r % 2 == 0 else reversed(range(len(models)))
             for j in order:
-                out[j].append(_time(lambda: models[j](ids, attention_mask=mask)))
+                out[j].append(seconds(lambda: models[j](ids, attention_mask=mask)))
     return {"batch": out}
 
 

@@ -6,122 +6,94 @@ new canonical weights); `compress` is the pipeline around it.
 from __future__ import annotations
 
 import ctypes
+import dataclasses
 import hashlib
 import json
 import shutil
-import time
+import sys
 from dataclasses import dataclass
 from pathlib import Path
 
 import torch
 
-from . import analysis, arch, factorize as fz, plan as planlib
-from .io.load import Loaded, is_compressed, tokens
+from . import analysis, arch, factorize as fz, plan as planlib, strategies
+from .loading import Loaded, is_compressed, tokens
 from .io.read import open_source
 from .io.write import DEFAULT_SHARD_SIZE
 from .model import build, build_block
-from .models import resolve
-from .progress import Progress
+from .builtin import resolve
+from .progress import Progress, Timer
 from .texts import read_texts, token_blocks
-from .analysis import Roots
 from .errors import CompressError
+from .factorize import DEFAULT_DAMPING
 from .shape import ModelShape
 
 FORMAT_VERSION = 1
-DEFAULT_DAMPING = 0.01
-
-
-def _rows(n_heads: int, hd: int, idx: torch.Tensor) -> torch.Tensor:
-    """Row indices of the kept dims `idx` (per head, (heads, k)) in a (n_heads*hd, d) projection."""
-    return (torch.arange(n_heads)[:, None] * hd + idx).reshape(-1)
 
 
 def factorize_layer(shape: ModelShape, w: dict[str, torch.Tensor], layer: int, ranks: planlib.LayerRanks,
-                    roots: Roots) -> dict[str, torch.Tensor]:
+                    roots: fz.Roots) -> dict[str, torch.Tensor]:
     """New canonical tensors of one layer at the planned ranks (float32).
 
     Rotary qk keeps `ranks.qk_pairs` (g, p) rows exactly; non-rotary qk refactorises each head's
     [x; 1] bilinear form; vo refactorises each key/value group jointly after folding the value bias into
     the output bias; feed-forward matrices get spectral factors `a: (d_out, r)`, `b: (d_in, r)` or stay dense.
-    Whitened when `roots` carry calibration Gram roots, plain SVD otherwise.
+    Whitened when `roots` carry calibration Gram roots, plain SVD otherwise (the maths: `factorize`).
     """
     p = f"layers.{layer}."
-    d, hd, h, g, rep = shape.d_model, shape.head_dim, shape.n_heads, shape.n_kv_heads, shape.q_per_kv
-    out: dict[str, torch.Tensor] = {}
-    for name in (p + "attn_norm.weight", p + "attn_norm.bias", p + "ff_norm.weight", p + "ff_norm.bias"):
-        if name in w:
-            out[name] = w[name]
-    wq, wk, wv, wo = (w[p + f"attn.{m}.weight"] for m in "qkvo")
-    bq, bk, bv, bo = (w.get(p + f"attn.{m}.bias") for m in "qkvo")
-    # --- query-key
+    out = {n: w[n] for n in (p + "attn_norm.weight", p + "attn_norm.bias", p + "ff_norm.weight", p + "ff_norm.bias")
+           if n in w}
+    out.update(_qk_tensors(shape, w, p, ranks, roots))
+    out.update(_vo_tensors(shape, w, p, ranks.vo, roots))
+    out.update(_ff_tensors(shape, w, p, ranks, roots))
+    return out
+
+
+def _qk_tensors(shape: ModelShape, w: dict, p: str, ranks: planlib.LayerRanks, roots: fz.Roots) -> dict:
+    """Query and key tensors of one layer: kept rotary rows (and the pairs), or cut [x; 1] forms."""
+    wq, wk, bq, bk = w[p + "attn.q.weight"], w[p + "attn.k.weight"], w.get(p + "attn.q.bias"), w.get(p + "attn.k.bias")
+    h, g = shape.n_heads, shape.n_kv_heads
     if shape.rotary:
         pairs = torch.tensor(ranks.qk_pairs, dtype=torch.long)  # (g, p) sorted pair indices
-        dims = torch.cat([pairs, pairs + hd // 2], dim=1)  # (g, 2p): first halves, then second halves
-        q_rows = _rows(h, hd, dims.repeat_interleave(rep, 0))  # query head j uses its group's pairs
-        k_rows = _rows(g, hd, dims)
-        out[p + "attn.q.weight"], out[p + "attn.k.weight"] = wq[q_rows], wk[k_rows]
+        q_rows, k_rows = fz.rotary_rows(pairs, h, g, shape.head_dim)
+        out = {p + "attn.q.weight": wq[q_rows], p + "attn.k.weight": wk[k_rows], p + "attn.pairs": pairs}
         if bq is not None:
             out[p + "attn.q.bias"], out[p + "attn.k.bias"] = bq[q_rows], bk[k_rows]
-        out[p + "attn.pairs"] = pairs
-    else:
-        r = ranks.qk
-        nq, nb, nk = [], [], []
-        for i, (q_h, k_h) in enumerate(zip(analysis.head_slices(wq, h), analysis.head_slices(wk, g))):
-            m = fz.qk_bias_form(q_h, None if bq is None else bq.reshape(h, hd)[i], k_h)  # (d[+1], d)
-            left = roots.attn_aug if bq is not None else roots.attn
-            if roots.attn is None:
-                a, b = fz.bilinear_factors(m, r)
-            else:
-                a, b = fz.bilinear_factors(m, r, left[0], left[1], roots.attn[0], roots.attn[1])
-            q_new, bq_new, k_new = fz.split_qk_factors(a, b, d)
-            nq.append(q_new), nk.append(k_new)
-            if bq_new is not None:
-                nb.append(bq_new)
-        out[p + "attn.q.weight"], out[p + "attn.k.weight"] = torch.cat(nq).float(), torch.cat(nk).float()
-        if bq is not None:
-            # the key bias only added query-constant terms to each softmax row, so it is gone exactly
-            out[p + "attn.q.bias"] = torch.cat(nb).float()
-            out[p + "attn.k.bias"] = torch.zeros(h * r)
-    # --- value-output
-    r = ranks.vo
+        return out
+    q, q_bias, k = fz.qk_factors(wq, bq, wk, h, g, ranks.qk, roots)
+    out = {p + "attn.q.weight": q.float(), p + "attn.k.weight": k.float()}
+    if bq is not None:
+        # the key bias only added query-constant terms to each softmax row, so it is gone exactly
+        out[p + "attn.q.bias"] = q_bias.float()
+        out[p + "attn.k.bias"] = torch.zeros(h * ranks.qk)
+    return out
+
+
+def _vo_tensors(shape: ModelShape, w: dict, p: str, rank: int, roots: fz.Roots) -> dict:
+    """Value and output tensors of one layer, the value bias folded into the output bias."""
+    wv, wo, bv, bo = w[p + "attn.v.weight"], w[p + "attn.o.weight"], w.get(p + "attn.v.bias"), w.get(p + "attn.o.bias")
     if bv is not None:
-        bo = fz.fold_value_bias(bv, wo, bo, h, g).float()  # rows of attention sum to one: exact
-    new_v, new_o = [], [None] * h
-    for gi, v_g in enumerate(analysis.head_slices(wv, g)):
-        heads = [wo[:, (gi * rep + j) * hd:(gi * rep + j + 1) * hd] for j in range(rep)]  # (d, hd) each
-        if roots.attn is None:
-            a, b = fz.vo_group_factors(v_g, heads, r)
-        else:
-            a, b = fz.vo_group_factors(v_g, heads, r, roots.attn[0], roots.attn[1])
-        v_new, o_new = fz.split_vo_factors(a, b, rep)
-        new_v.append(v_new)
-        for j, o_h in enumerate(o_new):
-            new_o[gi * rep + j] = o_h
-    out[p + "attn.v.weight"] = torch.cat(new_v).float()  # (g*r, d)
-    out[p + "attn.o.weight"] = torch.cat(new_o, dim=1).float()  # (d, h*r)
+        bo = fz.fold_value_bias(bv, wo, bo, shape.n_heads, shape.n_kv_heads).float()  # rows of attention sum to one
+    v, o = fz.vo_factors(wv, wo, shape.n_kv_heads, shape.q_per_kv, rank, roots)
+    out = {p + "attn.v.weight": v.float(), p + "attn.o.weight": o.float()}  # (g*r, d), (d, h*r)
     if bv is not None:
-        out[p + "attn.v.bias"] = torch.zeros(g * r)
+        out[p + "attn.v.bias"] = torch.zeros(shape.n_kv_heads * rank)
     if bo is not None:
         out[p + "attn.o.bias"] = bo
-    # --- feed-forward
+    return out
+
+
+def _ff_tensors(shape: ModelShape, w: dict, p: str, ranks: planlib.LayerRanks, roots: fz.Roots) -> dict:
+    """Feed-forward tensors of one layer: factors `a`, `b` at the planned rank, or the dense weight."""
+    out = {}
     for kind in planlib.ff_kinds(shape):
         name = p + f"ff.{kind}"
         if name + ".bias" in w:
             out[name + ".bias"] = w[name + ".bias"]
-        rank = ranks.ff[kind]
-        if rank is None:
+        if ranks.ff[kind] is None:
             out[name + ".weight"] = w[name + ".weight"]
             continue
-        root = roots.down if kind == "down" else roots.ff
-        out_w = getattr(roots, f"{kind}_out", None)
-        if root is None:
-            a, b = fz.spectral_factors(w[name + ".weight"], rank)
-        elif out_w is None:
-            a, b = fz.whitened_factors(w[name + ".weight"], rank, root[0], root[1])
-        else:
-            # minimise ‖diag(out_w) (W − A Bᵀ) L‖: whitened on the input, weighted on the output side
-            a, b = fz.bilinear_factors(w[name + ".weight"], rank, torch.diag(out_w), torch.diag(1 / out_w),
-                                       root[0], root[1])
+        a, b = fz.ff_factors(w[name + ".weight"], ranks.ff[kind], *roots.ff_sides(kind))
         out[name + ".a"], out[name + ".b"] = a.float().contiguous(), b.float().contiguous()
     return out
 
@@ -156,23 +128,6 @@ def sha256_file(path: Path, chunk: int = 1 << 22) -> str:
         while block := f.read(chunk):
             h.update(block)
     return h.hexdigest()
-
-
-@dataclass
-class Timer:
-    """Wall time per stage, for the report; a stage met again (once per layer) adds up."""
-    def __post_init__(self):
-        self._sums: dict[str, float] = {}
-        self._t = time.perf_counter()
-
-    def lap(self, name: str) -> None:
-        now = time.perf_counter()
-        self._sums[name] = self._sums.get(name, 0.0) + now - self._t
-        self._t = now
-
-    @property
-    def stages(self) -> dict[str, float]:
-        return {k: round(v, 3) for k, v in self._sums.items()}
 
 
 def check_plan_ranks(shape: ModelShape, plan: planlib.RankPlan, source: str) -> None:
@@ -376,7 +331,19 @@ def read_plan_file(plan_file: str, shape: ModelShape) -> planlib.RankPlan:
         reason = "not UTF-8 text" if isinstance(e, UnicodeDecodeError) else (e.strerror or e.__class__.__name__)
         raise CompressError(f"{plan_file}: cannot read the plan ({reason})") from None
     p = planlib.RankPlan.from_json(text, source=plan_file)
+    notes = []
+    # pairs listed for another pair count than the (edited) qk: choose them again rather than refuse
+    resized = [lr.layer for lr in p.layers if lr.qk_pairs is not None and any(len(g) != lr.qk for g in lr.qk_pairs)]
+    if resized:
+        p = dataclasses.replace(p, layers=tuple(dataclasses.replace(lr, qk_pairs=None) if lr.layer in resized else lr
+                                                for lr in p.layers))
+        notes.append(f"qk_pairs of layer(s) {', '.join(map(str, resized))} did not match qk and will be chosen again")
     check_plan_ranks(shape, p, plan_file)
+    p, stale = planlib.recount(shape, p, plan_file)
+    if stale:
+        notes.append(f"'predicted' was stale ({', '.join(stale)}); recomputed from the ranks")
+    for note in notes:
+        sys.stderr.write(f"note: plan {plan_file}: {note}\n")
     return p
 
 
@@ -388,7 +355,7 @@ def make_rank_plan(an: Analysed, keep: float | None, strategy: str, plan_file: s
         plan = read_plan_file(plan_file, sh)
     if plan is None:
         _check_budget(keep, strategy)
-        plan = planlib.make_plan(spectra_list(sh, an.spectra), sh, keep, strategy)
+        plan = strategies.make_plan(spectra_list(sh, an.spectra), sh, keep, strategy)
     return choose_pairs(sh, plan, an.spectra)
 
 
@@ -396,9 +363,9 @@ def _check_budget(keep: float | None, strategy: str) -> None:
     """--keep and --strategy, checked before any work."""
     if keep is None:
         raise CompressError("give --keep F (fraction of block-matrix parameters to keep) or --plan FILE")
-    planlib._check_keep(keep)
-    if strategy not in planlib.STRATEGIES:
-        raise CompressError(f"--strategy {strategy!r} is unknown; expected one of {', '.join(planlib.STRATEGIES)}")
+    planlib.check_keep(keep)
+    if strategy not in strategies.STRATEGIES:
+        raise CompressError(f"--strategy {strategy!r} is unknown; expected one of {', '.join(strategies.STRATEGIES)}")
 
 
 def _second_pass(an: Analysed, p: planlib.RankPlan, shards, quiet: bool) -> None:

@@ -22,7 +22,6 @@ from pathlib import Path
 from typing import Callable
 
 from .errors import CompressError
-from .texts import read_texts
 
 PYDOC_PARTS = ("calibration", "heldout")
 LICENSE_DIR = Path("/usr/share/common-licenses")
@@ -105,7 +104,15 @@ def license_text(max_chars: int | None = None, *, directory: str | Path = LICENS
             raise CompressError(
                 f"{directory / name}: no such license file; install the base-files package "
                 f"(Debian/Ubuntu) or use another corpus")
-    text, _ = read_texts([directory / name for name in LICENSE_FILES])
+    parts = []
+    for name in LICENSE_FILES:
+        try:
+            parts.append((directory / name).read_text(encoding="utf-8").removeprefix("\ufeff"))
+        except (OSError, UnicodeDecodeError) as e:
+            reason = "not UTF-8 text" if isinstance(e, UnicodeDecodeError) else (e.strerror or type(e).__name__)
+            raise CompressError(f"{directory / name}: cannot read the license file ({reason}); "
+                                "use another corpus") from None
+    text = "\n\n".join(parts)
     return text if max_chars is None else text[:max_chars]
 
 

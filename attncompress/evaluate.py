@@ -123,6 +123,13 @@ def param_groups(weights: dict[str, torch.Tensor]) -> dict[str, int]:
     return groups
 
 
+def kv_bytes_per_token(shape, weights: dict[str, torch.Tensor], bytes_per_element: int = 4) -> int:
+    """Key and value bytes one token adds to the cache, with the widths the canonical weights store."""
+    return shape.kv_bytes([(weights[f"layers.{i}.attn.q.weight"].shape[0] // shape.n_heads,
+                            weights[f"layers.{i}.attn.v.weight"].shape[0] // shape.n_kv_heads)
+                           for i in range(shape.n_layers)], bytes_per_element)
+
+
 def block_matrix_params(weights: dict[str, torch.Tensor]) -> int:
     """Parameters of the transformer-block matrices (q, k, v, o and feed-forward weights or factors; no biases)."""
     return sum(t.numel() for n, t in weights.items()

@@ -20,6 +20,8 @@ is the output on real activations, ||x (W - A B^T)^T||_F^2 = tr((W - A B^T) G (W
 """
 from __future__ import annotations
 
+from dataclasses import dataclass
+
 import torch
 
 from .errors import CompressError
@@ -27,6 +29,8 @@ from .errors import CompressError
 # Relative floor on eigenvalues in the eigendecomposition fallback of gram_root: keeps L invertible with
 # cond(L) <= 1e5 (cond(G) <= 1e10, the scale of the worst Gram matrices we see) so L^{-1} stays usable in float64.
 _EIG_FLOOR = 1e-10
+# Whitening damping relative to the mean diagonal of the Gram (see gram_root); every stage and the CLI use it.
+DEFAULT_DAMPING = 0.01
 
 
 # ----------------------------------------------------------------------------------------------------------
@@ -151,7 +155,7 @@ def singular_values(w: torch.Tensor, l: torch.Tensor | None = None) -> torch.Ten
     return torch.linalg.svdvals(w)
 
 
-def gram_root(gram: torch.Tensor, damping: float = 0.01) -> tuple[torch.Tensor, torch.Tensor]:
+def gram_root(gram: torch.Tensor, damping: float = DEFAULT_DAMPING) -> tuple[torch.Tensor, torch.Tensor]:
     """Square root L of a damped input Gram matrix, G_damped = L L^T, and its inverse.
 
     Damping: G_damped = G + damping * mean(diag(G)) * I. The Gram matrices of real activations reach condition
@@ -541,6 +545,146 @@ def split_vo_factors(a: torch.Tensor, b: torch.Tensor, n_heads_in_group: int
         raise CompressError(f"value/output factors: expected ({n_heads_in_group} * {d}, r) and ({d}, r), got "
                             f"{tuple(a.shape)} and {tuple(b.shape)}")
     return b.T.contiguous(), [blk.contiguous() for blk in a.split(d, dim=0)]
+
+
+# ----------------------------------------------------------------------------------------------------------
+# one layer, kind by kind (the pipeline names the tensors; the spectra use the same slicing and roots)
+# ----------------------------------------------------------------------------------------------------------
+
+@dataclass
+class Roots:
+    """Whitening factors of one layer's inputs, each a pair (L, L⁻¹) with G_damped = L Lᵀ, or None (weights only)."""
+    attn: tuple[torch.Tensor, torch.Tensor] | None  # (d, d) for the attention input x
+    attn_aug: tuple[torch.Tensor, torch.Tensor] | None  # (d+1, d+1) for [x; 1]; non-rotary query side
+    ff: tuple[torch.Tensor, torch.Tensor] | None  # (d, d) feed-forward input
+    down: tuple[torch.Tensor, torch.Tensor] | None  # (d_ff, d_ff) input of the down matrix
+    up_out: torch.Tensor | None = None  # (d_ff,) output-channel weights of the up matrix
+    gate_out: torch.Tensor | None = None  # (d_ff,) the same for gate
+
+    def qk_sides(self, bias: bool):
+        """(left, right) roots of a query-key form: [x; 1] on the query side when the query carries a bias."""
+        return (self.attn_aug if bias else self.attn), self.attn
+
+    def ff_sides(self, kind: str):
+        """(input root, output-channel weights or None) of feed-forward matrix `kind` (down reads d_ff inputs)."""
+        return (self.down if kind == "down" else self.ff), getattr(self, f"{kind}_out", None)
+
+
+def head_slices(w: torch.Tensor, n: int) -> list[torch.Tensor]:
+    """Split a (n*w, d) projection into n head blocks (w, d). Example: (8, 3), n=2 → two (4, 3)."""
+    return list(w.reshape(n, -1, w.shape[-1]).unbind(0))
+
+
+def group_output_heads(wo: torch.Tensor, n_kv_heads: int, q_per_kv: int) -> list[list[torch.Tensor]]:
+    """The output slices of each key/value group's query heads: per group, q_per_kv (d, w) column blocks.
+
+    Example: wo (3, 8), 2 groups of 2 heads → [[wo[:, 0:2], wo[:, 2:4]], [wo[:, 4:6], wo[:, 6:8]]].
+    """
+    w = wo.shape[1] // (n_kv_heads * q_per_kv)
+    return [[wo[:, (g * q_per_kv + j) * w:(g * q_per_kv + j + 1) * w] for j in range(q_per_kv)]
+            for g in range(n_kv_heads)]
+
+
+def qk_forms(wq: torch.Tensor, bq: torch.Tensor | None, wk: torch.Tensor, n_heads: int, n_kv_heads: int
+             ) -> list[torch.Tensor]:
+    """Each head's query-key form (see qk_bias_form): n_heads matrices (d[+1], d) float64."""
+    bqs = [None] * n_heads if bq is None else list(bq.reshape(n_heads, -1).unbind(0))
+    return [qk_bias_form(q_h, b_h, k_h)
+            for q_h, b_h, k_h in zip(head_slices(wq, n_heads), bqs, head_slices(wk, n_kv_heads))]
+
+
+def pair_dims(pairs: torch.Tensor, head_dim: int) -> torch.Tensor:
+    """The head dims of kept rotary pairs: (g, p) pair indices → (g, 2p), first halves then second halves.
+
+    Example: pairs [[0, 2]], head_dim 8 → [[0, 2, 4, 6]] (pair i is dims i and i + head_dim/2).
+    """
+    return torch.cat([pairs, pairs + head_dim // 2], dim=1)
+
+
+def _rows(n_heads: int, head_dim: int, idx: torch.Tensor) -> torch.Tensor:
+    """Row indices of the kept dims `idx` (per head, (heads, k)) in a (n_heads*head_dim, d) projection."""
+    return (torch.arange(n_heads)[:, None] * head_dim + idx).reshape(-1)
+
+
+def rotary_rows(pairs: torch.Tensor, n_heads: int, n_kv_heads: int, head_dim: int
+                ) -> tuple[torch.Tensor, torch.Tensor]:
+    """Rows of the query and key projections a rotary layer keeps: (h·2p,) and (g·2p,) indices.
+
+    Query head j keeps its group's pairs (j // q_per_kv), so every score keeps whole planes.
+    """
+    dims = pair_dims(pairs, head_dim)  # (g, 2p)
+    rep = n_heads // n_kv_heads
+    return _rows(n_heads, head_dim, dims.repeat_interleave(rep, 0)), _rows(n_kv_heads, head_dim, dims)
+
+
+def qk_factors(wq: torch.Tensor, bq: torch.Tensor | None, wk: torch.Tensor, n_heads: int, n_kv_heads: int,
+               rank: int, roots: Roots) -> tuple[torch.Tensor, torch.Tensor | None, torch.Tensor]:
+    """New query and key projections of a non-rotary layer: each head's [x; 1] form cut to `rank`.
+
+    Args:
+        wq: (h·head_dim, d), bq: (h·head_dim,) or None, wk: (g·head_dim, d) dense projections.
+        n_heads, n_kv_heads: h and g (equal without rotary: see plan.matrix_layout).
+        rank: kept rank per head.
+        roots: whitening of the layer (query side on [x; 1] when there is a bias).
+
+    Returns:
+        (q (h·rank, d), query bias (h·rank,) or None, k (h·rank, d)), float64. The key bias is gone exactly.
+    """
+    d = wq.shape[1]
+    left, right = roots.qk_sides(bq is not None)
+    nq, nb, nk = [], [], []
+    for m in qk_forms(wq, bq, wk, n_heads, n_kv_heads):  # (d[+1], d) each
+        if right is None:
+            a, b = bilinear_factors(m, rank)
+        else:
+            a, b = bilinear_factors(m, rank, left[0], left[1], right[0], right[1])
+        q_new, bq_new, k_new = split_qk_factors(a, b, d)
+        nq.append(q_new), nk.append(k_new)
+        if bq_new is not None:
+            nb.append(bq_new)
+    return torch.cat(nq), (torch.cat(nb) if nb else None), torch.cat(nk)
+
+
+def vo_factors(wv: torch.Tensor, wo: torch.Tensor, n_kv_heads: int, q_per_kv: int, rank: int, roots: Roots
+               ) -> tuple[torch.Tensor, torch.Tensor]:
+    """New value and output projections: each key/value group's value-output maps cut jointly to `rank`.
+
+    Args:
+        wv: (g·head_dim, d), wo: (d, h·head_dim) dense projections (fold the value bias first).
+        n_kv_heads, q_per_kv: g and the query heads per group.
+        rank: kept rank per group.
+        roots: whitening of the layer (the value input is the attention input).
+
+    Returns:
+        (v (g·rank, d), o (d, h·rank)), float64.
+    """
+    l = roots.attn if roots.attn is not None else (None, None)
+    new_v, new_o = [], []
+    for v_g, heads in zip(head_slices(wv, n_kv_heads), group_output_heads(wo, n_kv_heads, q_per_kv)):
+        v_new, o_new = split_vo_factors(*vo_group_factors(v_g, heads, rank, l[0], l[1]), q_per_kv)
+        new_v.append(v_new)
+        new_o.extend(o_new)
+    return torch.cat(new_v), torch.cat(new_o, dim=1)
+
+
+def ff_factors(w: torch.Tensor, rank: int, root, out_w: torch.Tensor | None) -> tuple[torch.Tensor, torch.Tensor]:
+    """Factors of a feed-forward matrix: plain SVD, whitened on the input, or also weighted on the output.
+
+    Args:
+        w: (d_out, d_in) weight.
+        rank: kept rank.
+        root: (L, L⁻¹) of the input Gram, or None for plain SVD.
+        out_w: (d_out,) output-channel weights, or None.
+
+    Returns:
+        a: (d_out, rank), b: (d_in, rank) float64.
+    """
+    if root is None:
+        return spectral_factors(w, rank)
+    if out_w is None:
+        return whitened_factors(w, rank, root[0], root[1])
+    # minimise ‖diag(out_w) (W − A Bᵀ) L‖: whitened on the input, weighted on the output side
+    return bilinear_factors(w, rank, torch.diag(out_w), torch.diag(1 / out_w), root[0], root[1])
 
 
 # ----------------------------------------------------------------------------------------------------------

@@ -150,12 +150,12 @@ class KVCache:
             self.v.append(torch.zeros(batch, a.n_kv_heads, max_len, a.w_vo, dtype=dtype))  # (b, g, t, w_vo)
         self.length = 0
         self.max_len = max_len
+        self._bytes = batch * model.shape.kv_bytes(model.kv_widths, dtype.itemsize)
 
     @property
     def bytes_per_token(self) -> int:
-        per = sum(k.shape[1] * k.shape[3] * k.element_size() + v.shape[1] * v.shape[3] * v.element_size()
-                  for k, v in zip(self.k, self.v))
-        return per * self.k[0].shape[0] if self.k else 0
+        """Cache bytes one more position takes over the whole batch."""
+        return self._bytes
 
 
 class Attention(nn.Module):
@@ -296,7 +296,7 @@ class Transformer(nn.Module):
         super().__init__()
         self.shape = shape
         # a tied table is also the output head: lay it out for one-row logits (embedding rows stay cheap to gather)
-        self.tokens = nn.Parameter(gemv_layout(tokens) if lm_head is None and shape.family != "bert" else tokens)  # (vocab, d)
+        self.tokens = nn.Parameter(gemv_layout(tokens) if lm_head is None and shape.is_decoder else tokens)  # (vocab, d)
         self.positions = nn.Parameter(positions) if positions is not None else None
         self.types = nn.Parameter(types) if types is not None else None
         self.embed_norm, self.final_norm = embed_norm, final_norm
@@ -304,8 +304,13 @@ class Transformer(nn.Module):
         self.lm_head = lm_head  # a Linear, or None when tied to `tokens`
 
     @property
+    def kv_widths(self) -> list[tuple[int, int]]:
+        """(w_qk, w_vo) per layer: the key and value widths of one key/value head as stored."""
+        return [(blk.attn.w_qk, blk.attn.w_vo) for blk in self.blocks]
+
+    @property
     def is_decoder(self) -> bool:
-        return self.shape.family != "bert"
+        return self.shape.is_decoder
 
     def hidden(self, ids, *, attention_mask=None, token_types=None, cache: KVCache | None = None, start: int = 0):
         """Final hidden states (b, s, d) for token ids (b, s)."""

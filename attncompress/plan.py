@@ -1,4 +1,6 @@
-"""Rank plans: how many units of rank every transformer-block matrix keeps, and the strategies that choose them.
+"""Rank plans: how many units of rank every transformer-block matrix keeps, what that costs, and its JSON.
+
+The strategies that choose the ranks are in `strategies`.
 
 Per layer the plan covers these matrices ("kinds"), each with its unit of rank:
 
@@ -17,13 +19,11 @@ The query bias of a non-rotary ``qk`` unit (one number per head) is therefore re
 from __future__ import annotations
 
 import dataclasses
-import heapq
-import inspect
 import json
 import math
 from dataclasses import dataclass
 from types import MappingProxyType
-from typing import Callable, Mapping, Sequence
+from typing import Mapping, Sequence
 
 import numpy as np
 
@@ -44,7 +44,7 @@ DEFAULT_BYTES_PER_ELEMENT = 4  # float32 key/value cache
 
 def ff_kinds(shape: ModelShape) -> tuple[str, ...]:
     """The feed-forward kinds of this model: ("gate", "up", "down") when gated, else ("up", "down")."""
-    return FF_KINDS if shape.gated else FF_KINDS[1:]
+    return shape.ff_kinds
 
 
 def ff_dims(shape: ModelShape, kind: str) -> tuple[int, int]:
@@ -146,9 +146,9 @@ class MatrixSpectrum:
         if self.unit not in UNITS:
             raise CompressError(f"{where}: unknown unit {self.unit!r}; expected 'pair' or 'rank'")
         for name in ("max_units", "unit_params", "dense_params"):
-            if not _is_int(getattr(self, name)) or getattr(self, name) <= 0:
+            if not is_whole(getattr(self, name)) or getattr(self, name) <= 0:
                 raise CompressError(f"{where}: {name} must be a positive whole number, got {getattr(self, name)!r}")
-        if not _is_int(self.layer) or self.layer < 0:
+        if not is_whole(self.layer) or self.layer < 0:
             raise CompressError(f"{where}: layer must be a whole number >= 0")
         if self.max_units * self.unit_params < self.dense_params:
             raise CompressError(f"{where}: full rank ({self.max_units} x {self.unit_params}) is cheaper than dense "
@@ -226,13 +226,14 @@ class RankPlan:
     The predicted counts describe the ranks at creation; after editing ranks use :func:`count_params`.
     """
     strategy: str
-    keep: float  # the target fraction of block-matrix parameters
-    model: Mapping[str, object]  # shape fingerprint, FINGERPRINT_FIELDS
+    keep: float | None  # the target fraction of block-matrix parameters (None in a hand-written plan)
+    model: Mapping[str, object]  # shape fingerprint, FINGERPRINT_FIELDS ({} in a hand-written plan)
     layers: tuple[LayerRanks, ...]
-    block_params_kept: int
-    block_params_dense: int
-    kv_bytes_per_token: int
-    kv_bytes_per_token_dense: int
+    # the predicted counts; None where a hand-edited plan left them out (`recount` fills them in)
+    block_params_kept: int | None
+    block_params_dense: int | None
+    kv_bytes_per_token: int | None
+    kv_bytes_per_token_dense: int | None
     bytes_per_element: int = DEFAULT_BYTES_PER_ELEMENT
 
     def __post_init__(self):
@@ -271,53 +272,46 @@ class RankPlan:
 
     @classmethod
     def from_json(cls, text: str, source: str = "<plan>") -> "RankPlan":
-        """Read a plan written by :meth:`to_json`.
+        """Read a plan written by :meth:`to_json`, or edited by hand.
+
+        Only ``layers`` (each with ``layer``, ``qk``, ``vo`` and ``ff``) is required. ``qk_pairs`` may be absent
+        or null (a later stage picks the pairs); ``predicted`` may be absent (its counts are then ``None``
+        until :func:`recount` fills them in); ``format``, ``version`` and ``model`` are checked when present.
 
         Args:
             text: the JSON text.
             source: the file name, used in error messages.
         Returns:
-            The plan (not yet checked against a model: call :meth:`check`).
+            The plan (not yet checked against a model: call :func:`recount` or :meth:`check`).
         Raises:
-            CompressError: not JSON, another format or version, missing / unknown / mistyped fields.
+            CompressError: not JSON, another format or version, unknown / mistyped fields, a layer without ranks.
         """
         pre = f"plan {source}"
         try:
             data = json.loads(text)
         except json.JSONDecodeError as exc:
             raise CompressError(f"{pre}: not valid JSON ({exc}); write the plan with attncompress") from None
-        if not isinstance(data, dict) or data.get("format") != PLAN_FORMAT:
-            raise CompressError(f"{pre}: not a rank plan (expected \"format\": \"{PLAN_FORMAT}\")")
-        if data.get("version") != PLAN_VERSION:
+        if not isinstance(data, dict) or data.get("format", PLAN_FORMAT) != PLAN_FORMAT or "layers" not in data:
+            raise CompressError(f"{pre}: not a rank plan (expected \"format\": \"{PLAN_FORMAT}\" and \"layers\")")
+        if data.get("version", PLAN_VERSION) != PLAN_VERSION:
             raise CompressError(f"{pre}: plan version {data.get('version')!r}, this attncompress reads version "
                                 f"{PLAN_VERSION}; make the plan again")
-        _exact_keys(data, {"format", "version", "strategy", "keep", "model", "bytes_per_element", "predicted",
-                           "layers"}, pre)
-        pred = _typed(data, "predicted", dict, pre)
-        _exact_keys(pred, {"block_params_kept", "block_params_dense", "kv_bytes_per_token",
-                           "kv_bytes_per_token_dense"}, f"{pre} predicted")
-        model = _typed(data, "model", dict, pre)
-        _exact_keys(model, set(FINGERPRINT_FIELDS), f"{pre} model")
-        keep = data["keep"]
-        if isinstance(keep, bool) or not isinstance(keep, (int, float)):
+        _known_keys(data, {"format", "version", "strategy", "keep", "model", "bytes_per_element", "predicted",
+                           "layers"}, {"layers"}, pre)
+        pred = _typed(data, "predicted", dict, pre) if data.get("predicted") is not None else {}
+        _known_keys(pred, set(_PREDICTED), set(), f"{pre} predicted")
+        model = _typed(data, "model", dict, pre) if data.get("model") is not None else {}
+        _known_keys(model, set(FINGERPRINT_FIELDS), set(), f"{pre} model")
+        keep = data.get("keep")
+        if keep is not None and (isinstance(keep, bool) or not isinstance(keep, (int, float))):
             raise CompressError(f"{pre}: keep must be a number, got {keep!r}")
-        layers = []
-        for i, item in enumerate(_typed(data, "layers", list, pre)):
-            where = f"{pre} layers[{i}]"
-            if not isinstance(item, dict):
-                raise CompressError(f"{where}: expected an object with layer, qk, vo, ff, qk_pairs")
-            _exact_keys(item, {"layer", "qk", "vo", "ff", "qk_pairs"}, where)
-            ff = _typed(item, "ff", dict, where)
-            pairs = item["qk_pairs"]
-            if pairs is not None and not (isinstance(pairs, list) and all(isinstance(g, list) for g in pairs)):
-                raise CompressError(f"{where}: qk_pairs must be null or a list of lists of pair indices")
-            layers.append(LayerRanks(item["layer"], item["qk"], item["vo"], ff, pairs))
-        return cls(strategy=str(_typed(data, "strategy", str, pre)), keep=keep, model=model, layers=tuple(layers),
-                   block_params_kept=_typed(pred, "block_params_kept", int, pre),
-                   block_params_dense=_typed(pred, "block_params_dense", int, pre),
-                   kv_bytes_per_token=_typed(pred, "kv_bytes_per_token", int, pre),
-                   kv_bytes_per_token_dense=_typed(pred, "kv_bytes_per_token_dense", int, pre),
-                   bytes_per_element=_typed(data, "bytes_per_element", int, pre))
+        layers = tuple(_layer_from_json(item, f"{pre} layers[{i}]")
+                       for i, item in enumerate(_typed(data, "layers", list, pre)))
+        counts = {k: (_typed(pred, k, int, f"{pre} predicted") if k in pred else None) for k in _PREDICTED}
+        bpe = _typed(data, "bytes_per_element", int, pre) if "bytes_per_element" in data else \
+            DEFAULT_BYTES_PER_ELEMENT
+        return cls(strategy=str(_typed(data, "strategy", str, pre)) if "strategy" in data else "edited",
+                   keep=keep, model=model, layers=layers, bytes_per_element=bpe, **counts)
 
     # -- validation
     def check(self, shape: ModelShape, source: str = "<plan>") -> None:
@@ -333,15 +327,15 @@ class RankPlan:
         """
         pre = f"plan {source}"
         differ = [f"{f} {self.model.get(f)!r} in the plan, {getattr(shape, f)!r} in the model"
-                  for f in FINGERPRINT_FIELDS if self.model.get(f) != getattr(shape, f)]
+                  for f in FINGERPRINT_FIELDS if f in self.model and self.model[f] != getattr(shape, f)]
         if differ:
             raise CompressError(f"{pre}: made for another model ({'; '.join(differ)}); make a new plan for this model")
-        if not _is_int(self.bytes_per_element) or self.bytes_per_element <= 0:
+        if not is_whole(self.bytes_per_element) or self.bytes_per_element <= 0:
             raise CompressError(f"{pre}: bytes_per_element must be a positive whole number, "
                                 f"got {self.bytes_per_element!r}")
         seen = set()
         for lr in self.layers:
-            if not _is_int(lr.layer) or not 0 <= lr.layer < shape.n_layers:
+            if not is_whole(lr.layer) or not 0 <= lr.layer < shape.n_layers:
                 raise CompressError(f"{pre}: layer {lr.layer!r} does not exist (the model has layers "
                                     f"0..{shape.n_layers - 1})")
             if lr.layer in seen:
@@ -366,7 +360,7 @@ def full_plan(shape: ModelShape, bytes_per_element: int = DEFAULT_BYTES_PER_ELEM
     Returns:
         A plan with strategy "full" and keep 1.0.
     """
-    return _finish(shape, _full_layers(shape), "full", 1.0, bytes_per_element)
+    return plan_from_layers(shape, _full_layers(shape), "full", 1.0, bytes_per_element)
 
 
 def count_params(shape: ModelShape, plan: RankPlan) -> ParamCount:
@@ -404,7 +398,7 @@ def kv_cache_bytes(shape: ModelShape, layers: Sequence[LayerRanks],
         Bytes per token over all layers.
     """
     per_unit = 2 if shape.rotary else 1  # a rotary pair is two cached key numbers
-    return sum(shape.n_kv_heads * (per_unit * lr.qk + lr.vo) * bytes_per_element for lr in layers)
+    return shape.kv_bytes([(per_unit * lr.qk, lr.vo) for lr in layers], bytes_per_element)
 
 
 def shape_fingerprint(shape: ModelShape) -> dict:
@@ -438,9 +432,9 @@ def _count(shape: ModelShape, layers: Sequence[LayerRanks]) -> ParamCount:
     return ParamCount(block_kept, block_dense, bias_kept, bias_dense, embeddings, norms)
 
 
-def _finish(shape: ModelShape, layers: Sequence[LayerRanks], strategy: str, keep: float,
+def plan_from_layers(shape: ModelShape, layers: Sequence[LayerRanks], strategy: str, keep: float,
             bytes_per_element: int) -> RankPlan:
-    """Wrap ranks in a plan with its predicted counts."""
+    """Wrap ranks in a checked plan with its predicted counts (what every strategy returns)."""
     layers = tuple(layers)
     counts = _count(shape, layers)
     plan = RankPlan(strategy=strategy, keep=float(keep), model=shape_fingerprint(shape), layers=layers,
@@ -450,6 +444,33 @@ def _finish(shape: ModelShape, layers: Sequence[LayerRanks], strategy: str, keep
                     bytes_per_element=bytes_per_element)
     plan.check(shape, source=f"<{strategy} plan>")  # a strategy must never emit an invalid plan
     return plan
+
+
+_PREDICTED = ("block_params_kept", "block_params_dense", "kv_bytes_per_token", "kv_bytes_per_token_dense")
+
+
+def recount(shape: ModelShape, plan: RankPlan, source: str = "<plan>") -> tuple[RankPlan, list[str]]:
+    """A (maybe hand-edited) plan checked against the model, with its predicted counts made from its ranks.
+
+    Example: a plan whose ranks were lowered by hand but whose ``predicted`` was left as written comes back
+    with fresh counts and ``stale == ["block_params_kept", "kv_bytes_per_token"]``.
+
+    Args:
+        shape: the model the plan is applied to.
+        plan: the plan as read.
+        source: the plan file name, used in error messages.
+    Returns:
+        (plan, stale): the plan with counts, fingerprint and keep (the kept fraction, when absent) filled in,
+        and the names of the counts the plan gave that did not match its ranks.
+    Raises:
+        CompressError: the plan does not fit the model (see :meth:`RankPlan.check`).
+    """
+    plan.check(shape, source)
+    counts = _count(shape, plan.layers)
+    keep = plan.keep if plan.keep is not None else counts.block_kept / counts.block_dense
+    fresh = plan_from_layers(shape, plan.layers, plan.strategy, keep, plan.bytes_per_element)
+    stale = [k for k in _PREDICTED if getattr(plan, k) is not None and getattr(plan, k) != getattr(fresh, k)]
+    return fresh, stale
 
 
 def _full_layers(shape: ModelShape) -> tuple[LayerRanks, ...]:
@@ -495,7 +516,7 @@ def _check_layer(lr: LayerRanks, shape: ModelShape, pre: str) -> None:
         for g, group in enumerate(lr.qk_pairs):
             if len(group) != lr.qk:
                 raise CompressError(f"{where} group {g}: {len(group)} pairs listed, qk keeps {lr.qk}")
-            ok = all(_is_int(p) and 0 <= p < shape.n_pairs for p in group)
+            ok = all(is_whole(p) and 0 <= p < shape.n_pairs for p in group)
             if not ok or any(a >= b for a, b in zip(group, group[1:])):
                 raise CompressError(f"{where} group {g}: expected sorted distinct pair indices in "
                                     f"0..{shape.n_pairs - 1}, got {list(group)}")
@@ -503,7 +524,7 @@ def _check_layer(lr: LayerRanks, shape: ModelShape, pre: str) -> None:
 
 def _check_units(value, maximum: int, where: str, what: str, why: str) -> None:
     """A unit count must be a whole number in 1..maximum."""
-    if not _is_int(value):
+    if not is_whole(value):
         raise CompressError(f"{where}: expected a whole number ({what}), got {value!r}")
     if value <= 0:
         raise CompressError(f"{where}: {what} {value}; every matrix keeps at least 1")
@@ -511,7 +532,7 @@ def _check_units(value, maximum: int, where: str, what: str, why: str) -> None:
         raise CompressError(f"{where}: {what} {value} is above the maximum {maximum} ({why}); lower it")
 
 
-def _is_int(x) -> bool:
+def is_whole(x) -> bool:
     """A whole number that is not a bool."""
     return isinstance(x, int) and not isinstance(x, bool)
 
@@ -524,352 +545,36 @@ def _typed(data: dict, key: str, typ: type, where: str):
     return value
 
 
-def _exact_keys(data: dict, keys: set, where: str) -> None:
-    """The JSON object has exactly these fields."""
-    missing, extra = sorted(keys - set(data)), sorted(set(data) - keys)
+def _known_keys(data: dict, keys: set, required: set, where: str) -> None:
+    """The JSON object has the required fields and no field outside `keys`."""
+    missing, extra = sorted(required - set(data)), sorted(set(data) - keys)
     if missing:
         raise CompressError(f"{where}: missing field {missing[0]!r}")
     if extra:
         raise CompressError(f"{where}: unknown field {extra[0]!r}")
 
 
-# ---------------------------------------------------------------------------------------------- strategies
+def _layer_from_json(item, where: str) -> LayerRanks:
+    """One entry of a plan's ``layers``: layer, qk, vo and ff required; qk_pairs absent or null means 'choose'."""
+    if not isinstance(item, dict):
+        raise CompressError(f"{where}: expected an object with layer, qk, vo, ff (and optionally qk_pairs)")
+    _known_keys(item, {"layer", "qk", "vo", "ff", "qk_pairs"}, {"layer", "qk", "vo", "ff"}, where)
+    ff = _typed(item, "ff", dict, where)
+    pairs = item.get("qk_pairs")
+    if pairs is not None and not (isinstance(pairs, list) and all(isinstance(g, list) for g in pairs)):
+        raise CompressError(f"{where}: qk_pairs must be null or a list of lists of pair indices")
+    return LayerRanks(item["layer"], item["qk"], item["vo"], ff, pairs)
 
-def _check_keep(keep) -> float:
-    """``--keep`` must be a number in (0, 1]."""
+
+# ---------------------------------------------------------------------------------------------- the budget
+
+def check_keep(keep) -> float:
+    """``--keep`` checked: a number in (0, 1], returned as a float; else CompressError."""
     if isinstance(keep, bool) or not isinstance(keep, (int, float)) or not math.isfinite(keep) \
             or not 0 < keep <= 1:
         raise CompressError(f"--keep: expected the fraction of block-matrix parameters to keep, in (0, 1], "
                             f"got {keep!r}; e.g. --keep 0.5")
     return float(keep)
-
-
-def _check_spectra(spectra: Sequence[MatrixSpectrum], shape: ModelShape) -> list[MatrixSpectrum]:
-    """One spectrum per matrix of the model, priced as :func:`matrix_layout` prices it; returned in layout order."""
-    layout = matrix_layout(shape)
-    by_key = {}
-    for s in spectra:
-        key = (s.layer, s.kind)
-        if key in by_key:
-            raise CompressError(f"spectra: layer {s.layer} {s.kind!r} given twice")
-        by_key[key] = s
-    wanted = {(c.layer, c.kind) for c in layout}
-    for key in by_key:
-        if key not in wanted:
-            raise CompressError(f"spectra: layer {key[0]} {key[1]!r} is not a matrix of this model")
-    out = []
-    for c in layout:
-        s = by_key.get((c.layer, c.kind))
-        if s is None:
-            raise CompressError(f"spectra: no spectrum for layer {c.layer} {c.kind!r}")
-        for f in ("unit", "max_units", "unit_params", "dense_params"):
-            if getattr(s, f) != getattr(c, f):
-                raise CompressError(f"spectra: layer {c.layer} {c.kind!r} has {f} {getattr(s, f)!r}, this model "
-                                    f"needs {getattr(c, f)!r}; build spectra from matrix_layout(shape)")
-        out.append(s)
-    return out
-
-
-def _check_option(name: str, value, kind: str) -> None:
-    """Strategy options: 'int>=1', 'fraction' in (0, 1], 'bool'."""
-    if kind == "int>=1" and not (_is_int(value) and value >= 1):
-        raise CompressError(f"strategy option {name}: expected a whole number >= 1, got {value!r}")
-    if kind == "fraction" and (isinstance(value, bool) or not isinstance(value, (int, float))
-                               or not 0 < value <= 1):
-        raise CompressError(f"strategy option {name}: expected a fraction in (0, 1], got {value!r}")
-    if kind == "bool" and not isinstance(value, bool):
-        raise CompressError(f"strategy option {name}: expected true or false, got {value!r}")
-
-
-def _prepare(spectra, shape, keep, bytes_per_element):
-    """Validate the common inputs; returns (ordered spectra, dense total, budget)."""
-    keep = _check_keep(keep)
-    _check_option("bytes_per_element", bytes_per_element, "int>=1")
-    spectra = _check_spectra(spectra, shape)
-    dense = sum(s.dense_params for s in spectra)
-    # kept <= keep * dense  <=>  kept <= floor(keep * dense) for whole kept counts.
-    return spectra, dense, math.floor(keep * dense)
-
-
-def _kcap(s: MatrixSpectrum) -> int:
-    """The most units that still cost less than dense (qk/vo: max_units - 1; FF: the highest paying rank)."""
-    return min(s.max_units, (s.dense_params - 1) // s.unit_params)
-
-
-def _settle(s: MatrixSpectrum, k: int) -> int:
-    """Map a unit count that would cost at least dense to ``max_units`` (the full / dense state)."""
-    return s.max_units if k > _kcap(s) else k
-
-
-def _cost(s: MatrixSpectrum, k: int) -> int:
-    """Block-matrix parameters of one matrix at ``k`` units (dense once factors stop paying)."""
-    return min(k * s.unit_params, s.dense_params)
-
-
-def _total_cost(spectra, units) -> int:
-    """Block-matrix parameters of a whole assignment."""
-    return sum(_cost(s, k) for s, k in zip(spectra, units))
-
-
-def _too_small(keep: float, budget: int, dense: int, need: int, floor: str, hint: str = "") -> CompressError:
-    """The error for a budget below the smallest plan."""
-    least = math.ceil(need / dense * 1e4) / 1e4  # rounded up, so the suggested keep is enough
-    return CompressError(f"--keep {keep}: the budget is {budget} of {dense} block-matrix parameters but the "
-                         f"smallest plan ({floor}) needs {need}; raise --keep to at least {least}{hint}")
-
-
-def _plan_from_units(spectra, units, shape, strategy, keep, bytes_per_element) -> RankPlan:
-    """Turn unit counts (``max_units`` = full / dense) into a checked plan."""
-    per_layer: dict[int, dict[str, int | None]] = {}
-    for s, k in zip(spectra, units):
-        assert 1 <= k <= s.max_units
-        dense = s.kind in FF_KINDS and k * s.unit_params >= s.dense_params
-        per_layer.setdefault(s.layer, {})[s.kind] = None if dense else k
-    layers = tuple(LayerRanks(i, r["qk"], r["vo"], {f: r[f] for f in ff_kinds(shape)})
-                   for i, r in sorted(per_layer.items()))
-    return _finish(shape, layers, strategy, keep, bytes_per_element)
-
-
-def _bisect(spectra, units_at: Callable[[float], list[int]], budget: int, keep: float, dense: int,
-            floor: str) -> list[int]:
-    """Largest ``t`` in [0, 1] whose assignment ``units_at(t)`` fits the budget (costs are monotone in t)."""
-    lo_units = units_at(0.0)
-    need = _total_cost(spectra, lo_units)
-    if need > budget:
-        raise _too_small(keep, budget, dense, need, floor)
-    hi_units = units_at(1.0)
-    if _total_cost(spectra, hi_units) <= budget:
-        return hi_units
-    lo, hi = 0.0, 1.0
-    # 60 halvings reach float64 resolution: the step of the cost curve is found as closely as t can say.
-    for _ in range(60):
-        mid = 0.5 * (lo + hi)
-        units = units_at(mid)
-        if _total_cost(spectra, units) <= budget:
-            lo, lo_units = mid, units
-        else:
-            hi = mid
-    return lo_units
-
-
-def plan_uniform(spectra: Sequence[MatrixSpectrum], shape: ModelShape, keep: float, *, min_units: int = 1,
-                 bytes_per_element: int = DEFAULT_BYTES_PER_ELEMENT) -> RankPlan:
-    """One factor ``f`` scales every matrix: ``k = round(f * max_units)``, at least ``min_units``.
-
-    ``f`` is bisected to the largest value whose plan keeps at most ``keep`` of the block-matrix parameters.
-    A feed-forward rank that would not be cheaper than dense stays dense.
-
-    Args:
-        spectra: one per matrix of the model (only prices are used).
-        shape: the model.
-        keep: fraction of block-matrix parameters to keep, in (0, 1].
-        min_units: floor on every matrix's units.
-        bytes_per_element: bytes of one cached key/value number, for the KV prediction.
-    Returns:
-        The plan.
-    Raises:
-        CompressError: bad keep / option, spectra not matching the model, or a budget below every matrix at
-            ``min_units``.
-    """
-    _check_option("min_units", min_units, "int>=1")
-    spectra, dense, budget = _prepare(spectra, shape, keep, bytes_per_element)
-
-    def units_at(f: float) -> list[int]:
-        # floor(x + 0.5): round half up, so the rank never shrinks as f grows.
-        return [_settle(s, min(s.max_units, max(min_units, math.floor(f * s.max_units + 0.5)))) for s in spectra]
-
-    units = _bisect(spectra, units_at, budget, keep, dense, f"every matrix at {min_units} unit(s)")
-    return _plan_from_units(spectra, units, shape, "uniform", keep, bytes_per_element)
-
-
-def plan_energy(spectra: Sequence[MatrixSpectrum], shape: ModelShape, keep: float, *, min_units: int = 1,
-                bytes_per_element: int = DEFAULT_BYTES_PER_ELEMENT) -> RankPlan:
-    """Every matrix keeps the fewest units that reach one energy fraction ``e``; ``e`` is bisected to the budget.
-
-    Args:
-        spectra: one per matrix of the model.
-        shape: the model.
-        keep: fraction of block-matrix parameters to keep, in (0, 1].
-        min_units: floor on every matrix's units.
-        bytes_per_element: bytes of one cached key/value number.
-    Returns:
-        The plan.
-    Raises:
-        CompressError: as :func:`plan_uniform`.
-    """
-    _check_option("min_units", min_units, "int>=1")
-    spectra, dense, budget = _prepare(spectra, shape, keep, bytes_per_element)
-    cums = [np.cumsum(np.asarray(s.gains, dtype=np.float64)) for s in spectra]  # (max_units,) each
-
-    def units_at(e: float) -> list[int]:
-        out = []
-        for s, c in zip(spectra, cums):
-            # First index whose cumulative energy reaches e * total; comparing sums avoids dividing.
-            k = int(np.searchsorted(c, e * c[-1], side="left")) + 1
-            out.append(_settle(s, min(s.max_units, max(min_units, k))))
-        return out
-
-    units = _bisect(spectra, units_at, budget, keep, dense, f"every matrix at {min_units} unit(s)")
-    return _plan_from_units(spectra, units, shape, "energy", keep, bytes_per_element)
-
-
-def _upper_hull(points: list[tuple[int, float, int]]) -> list[tuple[int, float, int]]:
-    """Upper concave hull of (cost, energy, units) points sorted by cost; collinear middles are dropped."""
-    hull: list[tuple[int, float, int]] = []
-    for p in points:
-        # Pop the last vertex while it lies on or below the chord from its predecessor to p.
-        while len(hull) >= 2:
-            (x0, y0, _), (x1, y1, _) = hull[-2], hull[-1]
-            if (x1 - x0) * (p[1] - y1) - (y1 - y0) * (p[0] - x1) >= 0:
-                hull.pop()
-            else:
-                break
-        hull.append(p)
-    return hull
-
-
-def plan_global(spectra: Sequence[MatrixSpectrum], shape: ModelShape, keep: float, *,
-                min_fraction: float = 0.125, min_units: int | None = None, normalise: bool = True,
-                bytes_per_element: int = DEFAULT_BYTES_PER_ELEMENT) -> RankPlan:
-    """Greedy allocation across all matrices by energy gained per parameter.
-
-    Every matrix starts at ``min_units`` (default ``max(1, ceil(min_fraction * max_units))``). Units are then
-    bought, best energy per parameter first, until the budget is spent. A feed-forward matrix's last step is
-    the switch to dense: from its highest paying rank ``r*`` it costs ``m n - r* (m + n)`` (at most one unit)
-    and wins all the remaining energy, so it is the best-value step of that matrix. Because that makes the
-    matrix's value curve non-concave, the greedy walks each matrix's upper concave hull of (cost, energy)
-    points (a hull edge may span several units; e.g. a flat spectrum jumps straight to dense). When a matrix's
-    next edge no longer fits, that matrix goes on one unit at a time (in the same best-value-first queue), so
-    less than one unit's price of budget is left unspent. Units that win no energy are never bought.
-
-    ``normalise=True`` divides each matrix's gains by its total energy, so a unit's value is the relative
-    reduction of that matrix's squared error (every matrix counts alike whatever its norm).
-    ``normalise=False`` compares raw energies, favouring matrices with large singular values.
-
-    Args:
-        spectra: one per matrix of the model.
-        shape: the model.
-        keep: fraction of block-matrix parameters to keep, in (0, 1].
-        min_fraction: starting units as a fraction of each matrix's maximum.
-        min_units: starting units for every matrix (overrides ``min_fraction``; capped at the maximum).
-        normalise: compare gains relative to each matrix's total energy.
-        bytes_per_element: bytes of one cached key/value number.
-    Returns:
-        The plan.
-    Raises:
-        CompressError: bad keep / option, spectra not matching the model, or a budget below the starting plan.
-    """
-    _check_option("min_fraction", min_fraction, "fraction")
-    if min_units is not None:
-        _check_option("min_units", min_units, "int>=1")
-    _check_option("normalise", normalise, "bool")
-    spectra, dense, budget = _prepare(spectra, shape, keep, bytes_per_element)
-
-    units, cums, hulls = [], [], []
-    for s in spectra:
-        start = min_units if min_units is not None else max(1, math.ceil(min_fraction * s.max_units))
-        k0 = _settle(s, min(s.max_units, start))
-        g = np.asarray(s.gains, dtype=np.float64)
-        total = float(g.sum())
-        if normalise and total > 0:
-            g = g / total  # relative error reduction per unit
-        c = np.concatenate([[0.0], np.cumsum(g)])  # (max_units + 1,): energy kept at k units
-        cums.append(c)
-        units.append(k0)
-        if k0 == s.max_units:
-            hulls.append([])
-            continue
-        kc = _kcap(s)
-        # States: k0..kcap factored, then full / dense (cost dense_params, all the energy).
-        pts = [(k * s.unit_params, float(c[k]), k) for k in range(k0, kc + 1)]
-        pts.append((s.dense_params, float(c[s.max_units]), s.max_units))
-        hulls.append(_upper_hull(pts))
-
-    need = _total_cost(spectra, units)
-    floor = f"every matrix at {min_units} unit(s)" if min_units is not None else \
-        f"every matrix at {min_fraction:g} of its maximum units"
-    if need > budget:
-        raise _too_small(keep, budget, dense, need, floor,
-                         " or lower min_units" if min_units is not None else " or lower min_fraction")
-    remaining = budget - need
-
-    # One heap of next moves: a whole hull edge while the matrix is in "edge" mode, then single steps (one
-    # unit, or the switch to dense from the highest paying rank) once an edge has failed to fit.
-    pos = [0] * len(spectra)  # current hull vertex per matrix
-    single = [False] * len(spectra)
-    heap: list[tuple[float, int]] = []
-
-    def move(i: int):
-        """(cost, energy, units after) of matrix i's next move, or None when it has none."""
-        s, k, c = spectra[i], units[i], cums[i]
-        if not single[i]:
-            h = hulls[i]
-            if pos[i] + 1 >= len(h):
-                return None
-            (x0, y0, _), (x1, y1, k1) = h[pos[i]], h[pos[i] + 1]
-            return x1 - x0, y1 - y0, k1
-        if k >= s.max_units:
-            return None
-        nxt = s.max_units if k + 1 > _kcap(s) else k + 1
-        return _cost(s, nxt) - _cost(s, k), float(c[nxt] - c[k]), nxt
-
-    def push(i: int) -> None:
-        """Queue matrix i's next move by energy per parameter (ties: layout order)."""
-        mv = move(i)
-        if mv is not None and mv[1] > 0:  # never buy units that win nothing
-            heapq.heappush(heap, (-mv[1] / mv[0], i))
-
-    for i in range(len(spectra)):
-        push(i)
-    while heap:
-        _, i = heapq.heappop(heap)
-        dc, _, nxt = move(i)
-        if dc <= remaining:
-            remaining -= dc
-            units[i] = nxt
-            if not single[i]:
-                pos[i] += 1
-            push(i)
-        elif not single[i]:
-            # Later hull edges are worse value; keep filling this matrix one unit at a time.
-            single[i] = True
-            push(i)
-        # A single step that does not fit is the matrix's last: the budget only shrinks.
-    assert _total_cost(spectra, units) == budget - remaining
-    return _plan_from_units(spectra, units, shape, "global", keep, bytes_per_element)
-
-
-STRATEGIES: dict[str, Callable[..., RankPlan]] = {"uniform": plan_uniform, "energy": plan_energy,
-                                                  "global": plan_global}
-
-
-def make_plan(spectra: Sequence[MatrixSpectrum], shape: ModelShape, keep: float, strategy: str = "global",
-              **opts) -> RankPlan:
-    """Choose ranks with a named strategy.
-
-    Args:
-        spectra: one :class:`MatrixSpectrum` per matrix of the model (see :func:`matrix_layout`).
-        shape: the model.
-        keep: fraction of block-matrix parameters to keep, in (0, 1] (``--keep``).
-        strategy: a key of :data:`STRATEGIES` (``--strategy``).
-        **opts: that strategy's keyword options.
-    Returns:
-        A plan whose block-matrix parameters are at most ``keep`` times the dense count.
-    Raises:
-        CompressError: keep outside (0, 1], unknown strategy or option, spectra not matching the model,
-            a budget that even the smallest plan exceeds.
-    """
-    _check_keep(keep)
-    if strategy not in STRATEGIES:
-        raise CompressError(f"--strategy: unknown strategy {strategy!r}; expected one of "
-                            f"{', '.join(sorted(STRATEGIES))}")
-    fn = STRATEGIES[strategy]
-    allowed = [p for p in inspect.signature(fn).parameters.values() if p.kind is p.KEYWORD_ONLY]
-    names = [p.name for p in allowed]
-    for name in opts:
-        if name not in names:
-            raise CompressError(f"strategy {strategy!r} has no option {name!r}; its options are {', '.join(names)}")
-    return fn(spectra, shape, keep, **opts)
 
 
 def summary(shape: ModelShape, p: RankPlan) -> dict:

@@ -1,8 +1,9 @@
-"""A small progress line on stderr: step, rate and time left."""
+"""A small progress line on stderr (step, rate and time left), and the one timer every stage reports with."""
 from __future__ import annotations
 
 import sys
 import time
+from typing import Callable
 
 
 class Progress:
@@ -39,3 +40,38 @@ class Progress:
         if not self.quiet and self.tty:
             sys.stderr.write("\n")
         return False
+
+
+class Timer:
+    """Wall time per stage, for the reports; a stage met again (once per layer, once per step) adds up.
+
+    `lap(name)` charges the time since the previous lap (or the start) to `name`; `seconds(fn)` times one call.
+    """
+
+    def __init__(self):
+        self._sums: dict[str, float] = {}
+        self._t = time.perf_counter()
+
+    def lap(self, name: str) -> float:
+        """Charge the time since the last lap to `name`; returns that time in seconds."""
+        now = time.perf_counter()
+        dt = now - self._t
+        self._sums[name] = self._sums.get(name, 0.0) + dt
+        self._t = now
+        return dt
+
+    def total(self, name: str) -> float:
+        """Seconds charged to `name` so far (0 when never met)."""
+        return self._sums.get(name, 0.0)
+
+    @property
+    def stages(self) -> dict[str, float]:
+        """Seconds per stage, rounded to milliseconds, in the order the stages were first met."""
+        return {k: round(v, 3) for k, v in self._sums.items()}
+
+
+def seconds(fn: Callable[[], object]) -> float:
+    """Wall seconds one call of fn takes."""
+    t0 = time.perf_counter()
+    fn()
+    return time.perf_counter() - t0

@@ -55,9 +55,37 @@ class ModelShape:
         return self.rope_theta is not None
 
     @property
+    def is_decoder(self) -> bool:
+        """A causal language model with an output head (llama, gpt2); False for an encoder (bert)."""
+        return self.causal
+
+    @property
+    def final_norm(self) -> bool:
+        """A norm after the last block: a pre-norm residual stream is never normalised otherwise."""
+        return self.pre_norm
+
+    @property
+    def embed_norm(self) -> bool:
+        """A norm on the embeddings: post-norm blocks (BERT) do not normalise their first input themselves."""
+        return not self.pre_norm
+
+    @property
+    def ff_kinds(self) -> tuple[str, ...]:
+        """The feed-forward matrices: ("gate", "up", "down") when gated, else ("up", "down")."""
+        return ("gate", "up", "down") if self.gated else ("up", "down")
+
+    @property
     def n_pairs(self) -> int:
         """Rotary frequency pairs per head (0 without rotary)."""
         return self.head_dim // 2 if self.rotary else 0
+
+    def kv_bytes(self, widths, bytes_per_element: int = 4) -> int:
+        """Key and value bytes one token adds to the cache: Σ_layers n_kv_heads·(w_qk + w_vo)·bytes.
+
+        The one place the cache size is computed; `widths` gives (w_qk, w_vo) per layer, the key and value
+        widths of one key/value head as stored. Example: 2 kv heads, widths [(8, 8), (4, 6)], 4 bytes → 208.
+        """
+        return sum(self.n_kv_heads * (w_qk + w_vo) for w_qk, w_vo in widths) * bytes_per_element
 
     def to_json(self) -> str:
         return json.dumps(dataclasses.asdict(self), indent=2, sort_keys=True)

@@ -11,6 +11,7 @@ from pathlib import Path
 
 import torch
 
+from .corpora import CORPORA, corpus_text
 from .errors import CompressError
 
 _BOM = "\ufeff"  # a UTF-8 byte-order mark some editors put first; not part of the text
@@ -19,7 +20,6 @@ _BOM = "\ufeff"  # a UTF-8 byte-order mark some editors put first; not part of t
 def _read_one(path: str | Path) -> tuple[str, dict]:
     """Read one UTF-8 text file (or `corpus:NAME`, a built-in corpus); return its text and its description."""
     if str(path).startswith("corpus:"):
-        from .corpora import CORPORA, corpus_text
         name = str(path).split(":", 1)[1]
         if name not in CORPORA:
             raise CompressError(f"{path}: unknown built-in corpus; expected one of "

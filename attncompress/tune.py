@@ -26,7 +26,7 @@ vocabulary: exact when k ≥ V, otherwise a lower bound of the full KL (coarseni
 divergence, the data-processing inequality). When the blocks a run touches would need more than
 `CACHE_BYTES`, nothing is cached and the teacher runs every step.
 
-Penalty (`decay`):
+Penalty (`decay`, the registry `DECAYS`; the default is Frobenius decay with λ = `DEFAULT_DECAY_COEF`):
     "frobenius": λ Σ ‖A Bᵀ‖_F² over every factor pair, as tr((AᵀA)(BᵀB)) — the product is never formed.
         The pairs: each factorised feed-forward matrix (a, b); for each query head h of group g the
         query-key form W_q^hᵀ W_k^g (d × d; with rotary embeddings the form at position offset zero — the
@@ -67,23 +67,22 @@ import json
 import math
 import os
 import sys
-import time
 from dataclasses import asdict, dataclass
 from pathlib import Path
+from typing import Callable
 
 import torch
 import torch.nn.functional as F
 
 from . import evaluate
 from .errors import CompressError
-from .io.load import is_compressed, load_model, read_manifest, tokens
+from .loading import is_compressed, load_model, read_manifest, tokens
 from .model import LayerNorm, Linear, LowRankLinear, Transformer
-from .models import BUILTIN, resolve
-from .progress import Progress
+from .io.write import atomic_dir, check_output, write_model_dir
+from .builtin import BUILTIN, resolve
+from .progress import Progress, Timer
 from .texts import read_texts, token_blocks
 
-DECAYS = ("frobenius", "factor", "none")
-DEFAULT_DECAY_COEF = 0.01  # the usual AdamW weight-decay value (common practice, no source)
 DEFAULT_MIX = 0.5
 DEFAULT_TEMPERATURE = 1.0
 DEFAULT_TOPK = 64
@@ -201,7 +200,7 @@ def frobenius_penalty(model: Transformer, dense: bool = False) -> torch.Tensor:
         if all(isinstance(m, Linear) for m in (a.q, a.k, a.v, a.o)):
             total = total + attention_pair_sq_norm(a.q.weight, a.k.weight, a.v.weight, a.o.weight,
                                                    a.n_heads, a.n_kv_heads)
-        for kind in ("gate", "up", "down"):
+        for kind in model.shape.ff_kinds:
             lin = getattr(blk.ff, kind, None)
             if isinstance(lin, LowRankLinear):
                 total = total + pair_sq_norm(lin.a, lin.bt.T)  # a: (d_out, r), b = btᵀ: (d_in, r)
@@ -291,7 +290,7 @@ def factor_params(model: Transformer) -> list[tuple[str, torch.nn.Parameter, boo
         p = f"layers.{i}."
         for m in "qkvo":
             out += _linear_params(p + f"attn.{m}", getattr(blk.attn, m))
-        for kind in ("gate", "up", "down"):
+        for kind in model.shape.ff_kinds:
             lin = getattr(blk.ff, kind, None)
             if isinstance(lin, LowRankLinear):
                 out += _linear_params(p + f"ff.{kind}", lin)
@@ -301,7 +300,7 @@ def factor_params(model: Transformer) -> list[tuple[str, torch.nn.Parameter, boo
 def dense_ff_params(model: Transformer) -> list[tuple[str, torch.nn.Parameter, bool]]:
     """The feed-forward matrices the plan left dense, with canonical names."""
     return [(f"layers.{i}.ff.{kind}.weight", lin.weight, False) for i, blk in enumerate(model.blocks)
-            for kind in ("gate", "up", "down") if isinstance(lin := getattr(blk.ff, kind, None), Linear)]
+            for kind in model.shape.ff_kinds if isinstance(lin := getattr(blk.ff, kind), Linear)]
 
 
 def norm_params(model: Transformer) -> list[tuple[str, torch.nn.Parameter, bool]]:
@@ -495,10 +494,317 @@ def _load_checkpoint(path: Path, fingerprint: dict) -> dict:
     return state
 
 
+# --------------------------------------------------------------------------------- losses and penalties
+#
+# A loss term maps (logits (b, s, V), tokens x (b, s), teacher targets or None, temperature) to a scalar; a
+# decay says whether AdamW decays the factors and which penalty, if any, joins the loss. A new loss or decay
+# is one function and one entry here; `--decay` reads its choices from DECAYS.
+
+def next_token_loss(logits: torch.Tensor, x: torch.Tensor, targets, temperature: float) -> torch.Tensor:
+    """Cross-entropy of the s − 1 next tokens of each block (`targets`, `temperature` unused)."""
+    vocab = logits.shape[-1]
+    return F.cross_entropy(logits[:, :-1].reshape(-1, vocab).float(), x[:, 1:].reshape(-1))
+
+
+def distillation_loss(logits: torch.Tensor, x: torch.Tensor, targets, temperature: float) -> torch.Tensor:
+    """T²·KL(teacher ‖ student) over all s positions; targets = (logp, ids), each (b·s, k)."""
+    logp, ids = targets
+    return distill_kl(logits.reshape(-1, logits.shape[-1]), logp, ids, temperature)
+
+
+@dataclass(frozen=True)
+class LossTerm:
+    fn: Callable[[torch.Tensor, torch.Tensor, object, float], torch.Tensor]
+    needs_teacher: bool
+
+
+LOSSES: dict[str, LossTerm] = {"ce": LossTerm(next_token_loss, False), "kl": LossTerm(distillation_loss, True)}
+
+
+def loss_weights(mix: float, teacher: bool) -> dict[str, float]:
+    """Weight of each loss term: mix·CE + (1 − mix)·KL with a teacher, CE alone without."""
+    return {"ce": mix, "kl": 1 - mix} if teacher else {"ce": 1.0}
+
+
+def step_loss(logits, x, targets, weights: dict[str, float], temperature: float):
+    """(Σ weight·term, {name: term}) over the weighted loss terms, in LOSSES order."""
+    terms = {n: LOSSES[n].fn(logits, x, targets, temperature) for n in LOSSES if n in weights}
+    it = iter(terms.items())
+    name, term = next(it)
+    loss = weights[name] * term
+    for name, term in it:
+        loss = loss + weights[name] * term
+    return loss, terms
+
+
+@dataclass(frozen=True)
+class Decay:
+    label: str  # for messages
+    weight_decay: bool  # AdamW's decoupled weight decay λ on the factor tensors
+    penalty: Callable[..., torch.Tensor] | None = None  # (model, dense=...) → Σ term, weighted λ in the loss
+
+
+DECAYS: dict[str, Decay] = {"frobenius": Decay("Frobenius", False, frobenius_penalty),
+                            "factor": Decay("factor", True), "none": Decay("no", False)}
+DEFAULT_DECAY = "frobenius"  # the tune, `run` and the API alike
+# λ of the default decay: ‖A Bᵀ‖² sums to about 2e7 on SmolLM2-135M, so 1e-8 makes the penalty about 0.2 nats
+DEFAULT_DECAY_COEF = 1e-8
+
+
+# --------------------------------------------------------------------------------------- opening the job
+
+@dataclass
+class _Job:
+    """A tune's inputs, checked: the compressed model, its manifest, the training blocks and held-out sets."""
+    src: Path
+    out: Path
+    ckpt: Path
+    manifest: dict
+    loaded: object  # loading.Loaded
+    blocks: torch.Tensor  # (n, s) training blocks
+    data: dict  # the manifest's description of the training data
+    sets: list  # (file name, description, token ids) per held-out file
+    force: bool  # replace an existing output
+
+    @property
+    def model(self) -> Transformer:
+        return self.loaded.model
+
+
+def _open_job(src_dir, texts, out, *, context, eval_texts, eval_tokens, resume, force) -> _Job:
+    """Check the paths, load the model and cut the text into blocks (errors in the order a user meets them)."""
+    src = Path(src_dir)
+    if not src.exists():
+        raise CompressError(f"{src}: no such directory; expected a directory written by `attncompress compress`")
+    if not is_compressed(src):
+        raise CompressError(f"{src}: not a compressed model (no attncompress.json); compress the model first with "
+                            "`attncompress compress`, then tune its output")
+    out = Path(out)
+    if out.resolve() == src.resolve():
+        raise CompressError(f"--out {out}: is the model being tuned; choose another directory")
+    check_output(out, force)
+    ckpt = checkpoint_path(out)
+    if ckpt.exists() and not resume and not force:
+        raise CompressError(f"{ckpt}: a checkpoint of an earlier run exists; pass --resume to continue it or "
+                            "--force to start over")
+    if not texts:
+        raise CompressError("no training text; give at least one --text FILE")
+    manifest = read_manifest(src)
+    loaded = load_model(src)
+    if not loaded.model.is_decoder:
+        raise CompressError(f"{src}: tune needs a decoder; this {loaded.shape.family} model is an encoder")
+    max_pos = loaded.shape.max_positions
+    if max_pos and context > max_pos:
+        raise CompressError(f"--context {context}: longer than the model's {max_pos} positions; give at most {max_pos}")
+    text, described = read_texts(texts)
+    blocks = token_blocks(tokens(loaded, text), context, source=", ".join(str(t) for t in texts))  # (n, s)
+    sets = _eval_sets(loaded, eval_texts, eval_tokens, context)
+    data = {"files": described, "context": context, "blocks": blocks.shape[0], "tokens": int(blocks.numel()),
+            "tokens_sha256": hashlib.sha256(blocks.numpy().tobytes()).hexdigest()}
+    return _Job(src, out, ckpt, manifest, loaded, blocks, data, sets, force)
+
+
+def _load_teacher(teacher: str | None, job: _Job, mix: float) -> tuple[Transformer | None, dict | None]:
+    """The frozen teacher runtime and its identity, or (None, None) without distillation (mix = 1)."""
+    if mix >= 1:
+        return None, None
+    path, ident = find_teacher(teacher, job.src, job.manifest)
+    if path is None:
+        return None, ident
+    tl = load_model(path)
+    vocab = job.loaded.shape.vocab_size
+    if not tl.model.is_decoder or tl.shape.vocab_size != vocab:
+        raise CompressError(f"--teacher {path}: a decoder with {vocab} tokens is expected, got "
+                            f"a {tl.shape.family} model with {tl.shape.vocab_size}")
+    tl.model.requires_grad_(False)
+    return tl.model, ident
+
+
+class TeacherCache:
+    """Top-k teacher targets per block, each computed alone (batch 1, so the bits never depend on the batch).
+
+    They are kept after the first use when the blocks a run touches fit in `CACHE_BYTES`, else recomputed.
+    """
+
+    def __init__(self, model: Transformer, blocks: torch.Tensor, topk: int, temperature: float, touched: int):
+        self.model, self.blocks, self.topk, self.temperature = model, blocks, topk, temperature
+        nbytes = touched * blocks.shape[1] * min(topk, model.shape.vocab_size) * 12  # float32 + int64
+        self._kept: dict[int, tuple[torch.Tensor, torch.Tensor]] | None = {} if nbytes <= CACHE_BYTES else None
+
+    @property
+    def description(self) -> str:
+        """How the manifest names the cache: "top-k" or "off"."""
+        return f"top-{self.topk}" if self._kept is not None else "off"
+
+    def block(self, j: int) -> tuple[torch.Tensor, torch.Tensor]:
+        """(logp, ids) of block j, each (s, k)."""
+        if self._kept is not None and j in self._kept:
+            return self._kept[j]
+        with torch.no_grad():
+            tgt = teacher_targets(self.model(self.blocks[j:j + 1])[0], self.topk, self.temperature)  # (s, k) each
+        if self._kept is not None:
+            self._kept[j] = tgt
+        return tgt
+
+    def batch(self, idx: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
+        """(logp, ids) of the blocks idx, each (b·s, k)."""
+        tg = [self.block(int(j)) for j in idx]
+        logp = torch.stack([t[0] for t in tg]).reshape(-1, tg[0][0].shape[-1])  # (b·s, k)
+        ids = torch.stack([t[1] for t in tg]).reshape(-1, tg[0][1].shape[-1])  # (b·s, k)
+        return logp, ids
+
+
+def _optimizer(model: Transformer, s: TuneSettings) -> tuple[torch.optim.AdamW, list]:
+    """AdamW over what trains (see the module docstring), and the trained (name, parameter, transposed) list."""
+    model.requires_grad_(False)
+    factors = factor_params(model) + (dense_ff_params(model) if s.train_dense else [])
+    norms = norm_params(model) if s.train_norms else []
+    trained = factors + norms
+    for _, p, _ in trained:
+        p.requires_grad_(True)
+    groups = [{"params": [p for _, p, _ in factors],
+               "weight_decay": s.decay_coef if DECAYS[s.decay].weight_decay else 0.0}]
+    if norms:
+        groups.append({"params": [p for _, p, _ in norms], "weight_decay": 0.0})
+    return torch.optim.AdamW(groups, lr=s.lr), trained  # the learning rate is set before every step
+
+
+# --------------------------------------------------------------------------------------------- the loop
+
+@dataclass
+class _Run:
+    """One tune in progress on one process: what it trains, from which data, and where it checkpoints."""
+    job: _Job
+    settings: TuneSettings
+    opt: torch.optim.AdamW
+    trained: list
+    teacher: TeacherCache | None
+    fingerprint: dict
+    rank: int
+    world: int
+    save_every: int
+    quiet: bool
+
+    def __post_init__(self):
+        self.net = self.job.model
+        if self.world > 1:
+            from torch.nn.parallel import DistributedDataParallel
+            self.net = DistributedDataParallel(self.job.model)
+        self.weights = loss_weights(self.settings.mix, self.teacher is not None)
+        self.curve: list[dict] = []
+        self.warnings: list[str] = []
+        self.pen_value: float | None = None
+
+    def resume(self) -> tuple[int, dict | None]:
+        """Load the checkpoint into the parameters, optimiser, RNG and curve; (its step, its eval_before)."""
+        state = _load_checkpoint(self.job.ckpt, self.fingerprint)
+        named = {n: p for n, p, _ in self.trained}
+        with torch.no_grad():
+            for n, t in state["params"].items():
+                named[n].copy_(t)
+        self.opt.load_state_dict(state["optimizer"])
+        torch.set_rng_state(state["rng"])
+        self.curve = state["curve"]
+        self.pen_value = self.curve[-1]["penalty"] if self.curve else None
+        return state["step"], state["eval_before"]
+
+    def _penalty(self, step: int, loss: torch.Tensor) -> torch.Tensor | None:
+        """λ times the decay's penalty on the steps it is evaluated (lazily, every penalty_every steps)."""
+        s = self.settings
+        decay = DECAYS[s.decay]
+        if decay.penalty is None or s.decay_coef <= 0 or step % s.penalty_every:
+            return None
+        pen = s.decay_coef * decay.penalty(self.job.model, dense=s.train_dense)
+        self.pen_value = float(pen.detach())
+        if step == 0 and self.pen_value > float(loss.detach()) and self.rank == 0:
+            note = (f"warning: the {decay.label} penalty {self.pen_value:.4g} exceeds the loss "
+                    f"{float(loss.detach()):.4g} at the start; λ = {s.decay_coef:g} will mostly shrink "
+                    f"the factors (λ ≈ {0.05 * float(loss.detach()) * s.decay_coef / self.pen_value:.2g} "
+                    "would make it 5% of the loss)")
+            self.warnings.append(note)
+            if not self.quiet:
+                sys.stderr.write(note + "\n")
+        return pen
+
+    def step(self, step: int) -> dict:
+        """One optimiser update on this process's slice of the step's global batch; returns its curve entry."""
+        s, local = self.settings, self.settings.batch // self.world
+        idx = block_order(self.job.blocks.shape[0], s.seed, step * s.batch, s.batch)[
+            self.rank * local:(self.rank + 1) * local]
+        x = self.job.blocks[idx]  # (b, s)
+        lr = s.lr * lr_multiplier(step, s.steps, s.warmup)
+        for g in self.opt.param_groups:
+            g["lr"] = lr
+        self.opt.zero_grad(set_to_none=True)
+        logits = self.net(x)  # (b, s, V)
+        targets = self.teacher.batch(idx) if self.teacher is not None else None
+        loss, terms = step_loss(logits, x, targets, self.weights, s.temperature)
+        pen = self._penalty(step, loss)
+        total = loss if pen is None else loss + s.penalty_every * pen  # lazy: the weight of the skipped steps
+        total.backward()
+        self.opt.step()
+        vals = _mean_over_ranks([float(loss.detach())] + [float(terms[n].detach()) if n in terms else 0.0
+                                                          for n in LOSSES], self.world)
+        return {"step": step + 1, "loss": vals[0],
+                **{n: v if n in terms else None for n, v in zip(LOSSES, vals[1:])},
+                "penalty": self.pen_value, "lr": lr}
+
+    def _checkpoint(self, step: int, eval_before) -> None:
+        if self.rank == 0:
+            _save_checkpoint(self.job.ckpt, {
+                "format": CHECKPOINT_FORMAT, "fingerprint": self.fingerprint, "step": step,
+                "params": {n: p.detach().clone() for n, p, _ in self.trained},
+                "optimizer": self.opt.state_dict(), "rng": torch.get_rng_state(), "curve": self.curve,
+                "eval_before": eval_before})
+        _barrier(self.world)
+
+    def train(self, start: int, eval_before, timer: Timer) -> None:
+        """Steps start..steps-1 with a progress line and checkpoints; Ctrl-C becomes TuneInterrupted."""
+        s = self.settings
+        last_ckpt = start if start else None
+        step = start
+        label = "tune" if start == 0 else f"tune (from step {start})"
+        try:
+            with Progress(s.steps - start, label, unit="step", quiet=self.quiet or self.rank != 0) as bar:
+                for step in range(start, s.steps):
+                    self.curve.append(self.step(step))
+                    dt = timer.lap("train")
+                    bar.update(1, step=f"{step + 1}/{s.steps}", loss=self.curve[-1]["loss"],
+                               penalty=self.pen_value if self.pen_value is not None else "-",
+                               tok_s=f"{s.batch * s.context / dt:.0f}")
+                    if self.save_every and (step + 1) % self.save_every == 0 and step + 1 < s.steps:
+                        self._checkpoint(step + 1, eval_before)
+                        last_ckpt = step + 1
+                    timer.lap("train")
+        except KeyboardInterrupt:
+            held = (f"the checkpoint {self.job.ckpt} holds step {last_ckpt}; continue with --resume" if last_ckpt
+                    else "no checkpoint was written yet (see --save-every)")
+            raise TuneInterrupted(f"interrupted at step {step + 1} of {s.steps}; {held}") from None
+
+
+# ------------------------------------------------------------------------------------ writing the result
+
+def _write_tuned(job: _Job, trained: list, section: dict) -> None:
+    """The tuned directory: the source's tensors with the trained ones replaced, its manifest with `tune`."""
+    manifest = copy.deepcopy(job.manifest)
+    if "tune" in job.manifest:
+        section["previous"] = job.manifest["tune"]
+    manifest["tune"] = section
+    source = job.loaded.source
+    weights = {n: source.get(n) for n in source.names()}
+    for n, p, transposed in trained:
+        weights[n] = (p.detach().T if transposed else p.detach()).contiguous().clone()
+    cfg_file = job.src / "source-config.json"
+    config = json.loads(cfg_file.read_text(encoding="utf-8")) if cfg_file.is_file() else None
+    with atomic_dir(job.out, job.force) as tmp:
+        write_model_dir(tmp, weights, manifest, job.loaded.tokenizer, config)
+    job.ckpt.unlink(missing_ok=True)
+
+
 # ------------------------------------------------------------------------------------------- the tune
 
 def tune(src_dir: str | Path, texts: list[str | Path], out: str | Path, *, steps: int = 100, batch: int = 4,
-         context: int = 128, lr: float = 1e-4, seed: int = 0, decay: str = "factor",
+         context: int = 128, lr: float = 1e-4, seed: int = 0, decay: str = DEFAULT_DECAY,
          decay_coef: float = DEFAULT_DECAY_COEF, penalty_every: int = DEFAULT_PENALTY_EVERY,
          temperature: float = DEFAULT_TEMPERATURE, mix: float = DEFAULT_MIX, teacher: str | None = None,
          topk: int = DEFAULT_TOPK, eval_texts: list[str | Path] | None = None, eval_tokens: int | None = None,
@@ -512,8 +818,8 @@ def tune(src_dir: str | Path, texts: list[str | Path], out: str | Path, *, steps
         out: the directory to write (same layout as `src_dir`; its manifest gains a `tune` section).
         steps, batch, context, lr, seed: optimiser steps, global blocks per step, tokens per block, peak
             learning rate, seed of the data order.
-        decay, decay_coef, penalty_every: "frobenius" | "factor" | "none", λ, and how often the Frobenius
-            penalty is evaluated (see the module docstring).
+        decay, decay_coef, penalty_every: a key of `DECAYS` ("frobenius" | "factor" | "none"), λ, and how often
+            the Frobenius penalty is evaluated (see the module docstring).
         temperature, mix, teacher, topk: distillation temperature, weight of the next-token loss, teacher path
             (None: the manifest's source model, "none": no teacher), teacher tokens cached per position.
         eval_texts, eval_tokens: held-out text files scored (perplexity at `context`) before and after, at most
@@ -530,214 +836,56 @@ def tune(src_dir: str | Path, texts: list[str | Path], out: str | Path, *, steps
             model, a teacher that cannot be found or does not fit, an existing output without `force`.
         TuneInterrupted: Ctrl-C; the last checkpoint (if any) is complete.
     """
-    t_start = time.perf_counter()
-    world_env = max(1, int(os.environ.get("WORLD_SIZE", "1")))
+    timer = Timer()
     _check_options(steps, batch, context, lr, decay, decay_coef, penalty_every, temperature, mix, topk, save_every,
-                   eval_tokens, world_env)
-    src = Path(src_dir)
-    if not src.exists():
-        raise CompressError(f"{src}: no such directory; expected a directory written by `attncompress compress`")
-    if not is_compressed(src):
-        raise CompressError(f"{src}: not a compressed model (no attncompress.json); compress the model first with "
-                            "`attncompress compress`, then tune its output")
-    out = Path(out)
-    if out.resolve() == src.resolve():
-        raise CompressError(f"--out {out}: is the model being tuned; choose another directory")
-    from .io.write import atomic_dir, check_output, write_model_dir
-    check_output(out, force)
-    ckpt = checkpoint_path(out)
-    if ckpt.exists() and not resume and not force:
-        raise CompressError(f"{ckpt}: a checkpoint of an earlier run exists; pass --resume to continue it or "
-                            "--force to start over")
-    if not texts:
-        raise CompressError("no training text; give at least one --text FILE")
-    manifest = read_manifest(src)
-
-    loaded = load_model(src)
-    model = loaded.model
-    if not model.is_decoder:
-        raise CompressError(f"{src}: tune needs a decoder; this {loaded.shape.family} model is an encoder")
-    max_pos = loaded.shape.max_positions
-    if max_pos and context > max_pos:
-        raise CompressError(f"--context {context}: longer than the model's {max_pos} positions; give at most {max_pos}")
-    text, described = read_texts(texts)
-    blocks = token_blocks(tokens(loaded, text), context, source=", ".join(str(t) for t in texts))  # (n, s)
-    n_blocks = blocks.shape[0]
-    sets = _eval_sets(loaded, eval_texts, eval_tokens, context)
-
-    use_teacher = mix < 1
-    t_path, t_ident = find_teacher(teacher, src, manifest) if use_teacher else (None, None)
-    teacher_model = None
-    if t_path is not None:
-        tl = load_model(t_path)
-        teacher_model = tl.model
-        if not teacher_model.is_decoder or tl.shape.vocab_size != loaded.shape.vocab_size:
-            raise CompressError(f"--teacher {t_path}: a decoder with {loaded.shape.vocab_size} tokens is expected, got "
-                                f"a {tl.shape.family} model with {tl.shape.vocab_size}")
-        teacher_model.requires_grad_(False)
-    eff_mix = float(mix) if teacher_model is not None else 1.0
+                   eval_tokens, max(1, int(os.environ.get("WORLD_SIZE", "1"))))
+    job = _open_job(src_dir, texts, out, context=context, eval_texts=eval_texts, eval_tokens=eval_tokens,
+                    resume=resume, force=force)
+    teacher_model, t_ident = _load_teacher(teacher, job, mix)
     settings = TuneSettings(steps=steps, batch=batch, context=context, lr=float(lr), seed=seed, decay=decay,
                             decay_coef=float(decay_coef), penalty_every=penalty_every, temperature=float(temperature),
-                            mix=eff_mix, topk=topk, train_norms=train_norms, train_dense=train_dense,
-                            warmup=max(1, round(WARMUP_FRACTION * steps)))
-    data = {"files": described, "context": context, "blocks": n_blocks, "tokens": int(blocks.numel()),
-            "tokens_sha256": hashlib.sha256(blocks.numpy().tobytes()).hexdigest()}
-    model_sha = _sha256_file(src / "model.safetensors")
-    fingerprint = {"settings": json.dumps(settings.to_json(), sort_keys=True), "data": data["tokens_sha256"],
+                            mix=float(mix) if teacher_model is not None else 1.0, topk=topk, train_norms=train_norms,
+                            train_dense=train_dense, warmup=max(1, round(WARMUP_FRACTION * steps)))
+    model_sha = _sha256_file(job.src / "model.safetensors")
+    fingerprint = {"settings": json.dumps(settings.to_json(), sort_keys=True), "data": job.data["tokens_sha256"],
                    "model": model_sha, "teacher": json.dumps(t_ident, sort_keys=True)}
-
-    # --- what trains
-    model.requires_grad_(False)
-    factors = factor_params(model) + (dense_ff_params(model) if train_dense else [])
-    norms = norm_params(model) if train_norms else []
-    trained = factors + norms
-    for _, p, _ in trained:
-        p.requires_grad_(True)
-    groups = [{"params": [p for _, p, _ in factors], "weight_decay": decay_coef if decay == "factor" else 0.0}]
-    if norms:
-        groups.append({"params": [p for _, p, _ in norms], "weight_decay": 0.0})
-    opt = torch.optim.AdamW(groups, lr=lr)  # the learning rate is set before every step from the schedule
-
+    opt, trained = _optimizer(job.model, settings)
     rank, world, created = _init_distributed()
     try:
-        net = model
-        if world > 1:
-            from torch.nn.parallel import DistributedDataParallel
-            net = DistributedDataParallel(model)
-        local = batch // world
-        per_rank_blocks = min(n_blocks, steps * local)
-        cache_bytes = per_rank_blocks * context * min(topk, loaded.shape.vocab_size) * 12  # float32 + int64
-        cache: dict[int, tuple[torch.Tensor, torch.Tensor]] | None = {} if cache_bytes <= CACHE_BYTES else None
-
-        start, curve, eval_before = 0, [], None
-        if resume:
-            state = _load_checkpoint(ckpt, fingerprint)
-            named = {n: p for n, p, _ in trained}
-            with torch.no_grad():
-                for n, t in state["params"].items():
-                    named[n].copy_(t)
-            opt.load_state_dict(state["optimizer"])
-            torch.set_rng_state(state["rng"])
-            start, curve, eval_before = state["step"], state["curve"], state["eval_before"]
-        t_load = time.perf_counter() - t_start
-        if eval_before is None and sets:
+        cache = None
+        if teacher_model is not None:
+            touched = min(job.blocks.shape[0], steps * (batch // world))
+            cache = TeacherCache(teacher_model, job.blocks, topk, settings.temperature, touched)
+        run = _Run(job, settings, opt, trained, cache, fingerprint, rank, world, save_every, quiet)
+        start, eval_before = run.resume() if resume else (0, None)
+        timer.lap("load")
+        if eval_before is None and job.sets:
             if rank == 0:
-                eval_before = _perplexities(model, sets, context)
+                eval_before = _perplexities(job.model, job.sets, context)
             _barrier(world)
-        t_eval0 = time.perf_counter() - t_start - t_load
-
-        def teacher_block(j: int):
-            """Top-k teacher targets of block j, computed alone so the bits never depend on the batch."""
-            if cache is not None and j in cache:
-                return cache[j]
-            with torch.no_grad():
-                tgt = teacher_targets(teacher_model(blocks[j:j + 1])[0], topk, temperature)  # (s, k) each
-            if cache is not None:
-                cache[j] = tgt
-            return tgt
-
-        last_ckpt = start if resume else None
-        warnings_: list[str] = []
-        step = start
-        pen_value = curve[-1]["penalty"] if curve else None
-        t_train = time.perf_counter()
-        vocab = loaded.shape.vocab_size
-        try:
-            with Progress(steps - start, "tune" if start == 0 else f"tune (from step {start})", unit="step",
-                          quiet=quiet or rank != 0) as bar:
-                for step in range(start, steps):
-                    t0 = time.perf_counter()
-                    idx = block_order(n_blocks, seed, step * batch, batch)[rank * local:(rank + 1) * local]
-                    x = blocks[idx]  # (b, s)
-                    mult = lr_multiplier(step, steps, settings.warmup)
-                    for g in opt.param_groups:
-                        g["lr"] = lr * mult
-                    opt.zero_grad(set_to_none=True)
-                    logits = net(x)  # (b, s, V)
-                    ce = F.cross_entropy(logits[:, :-1].reshape(-1, vocab).float(), x[:, 1:].reshape(-1))
-                    loss, kl = ce, None
-                    if teacher_model is not None:
-                        tg = [teacher_block(int(j)) for j in idx]
-                        logp = torch.stack([t[0] for t in tg]).reshape(-1, tg[0][0].shape[-1])  # (b·s, k)
-                        ids = torch.stack([t[1] for t in tg]).reshape(-1, tg[0][1].shape[-1])  # (b·s, k)
-                        kl = distill_kl(logits.reshape(-1, vocab), logp, ids, temperature)
-                        loss = eff_mix * ce + (1 - eff_mix) * kl
-                    total = loss
-                    if decay == "frobenius" and decay_coef > 0 and step % penalty_every == 0:
-                        pen = decay_coef * frobenius_penalty(model, dense=train_dense)
-                        pen_value = float(pen.detach())
-                        if step == 0 and pen_value > float(loss.detach()) and rank == 0:
-                            note = (f"warning: the Frobenius penalty {pen_value:.4g} exceeds the loss "
-                                    f"{float(loss.detach()):.4g} at the start; λ = {decay_coef:g} will mostly shrink "
-                                    f"the factors (λ ≈ {0.05 * float(loss.detach()) * decay_coef / pen_value:.2g} "
-                                    "would make it 5% of the loss)")
-                            warnings_.append(note)
-                            if not quiet:
-                                sys.stderr.write(note + "\n")
-                        total = total + penalty_every * pen  # lazy: the weight of the skipped steps at once
-                    total.backward()
-                    opt.step()
-                    vals = _mean_over_ranks([float(loss.detach()), float(ce.detach()),
-                                             float(kl.detach()) if kl is not None else 0.0], world)
-                    curve.append({"step": step + 1, "loss": vals[0], "ce": vals[1],
-                                  "kl": vals[2] if kl is not None else None, "penalty": pen_value,
-                                  "lr": lr * mult})
-                    dt = time.perf_counter() - t0
-                    bar.update(1, step=f"{step + 1}/{steps}", loss=vals[0],
-                               penalty=pen_value if pen_value is not None else "-",
-                               tok_s=f"{batch * context / dt:.0f}")
-                    if save_every and (step + 1) % save_every == 0 and step + 1 < steps:
-                        if rank == 0:
-                            _save_checkpoint(ckpt, {
-                                "format": CHECKPOINT_FORMAT, "fingerprint": fingerprint, "step": step + 1,
-                                "params": {n: p.detach().clone() for n, p, _ in trained},
-                                "optimizer": opt.state_dict(), "rng": torch.get_rng_state(), "curve": curve,
-                                "eval_before": eval_before})
-                        _barrier(world)
-                        last_ckpt = step + 1
-        except KeyboardInterrupt:
-            held = (f"the checkpoint {ckpt} holds step {last_ckpt}; continue with --resume" if last_ckpt
-                    else "no checkpoint was written yet (see --save-every)")
-            raise TuneInterrupted(f"interrupted at step {step + 1} of {steps}; {held}") from None
-        t_train = time.perf_counter() - t_train
-
-        eval_after = None
-        t1 = time.perf_counter()
-        if sets and rank == 0:
-            eval_after = _perplexities(model, sets, context)
-        t_eval1 = time.perf_counter() - t1
-
-        t2 = time.perf_counter()
-        section = {"settings": settings.to_json(), "data": data, "teacher": t_ident,
-                   "teacher_cache": (f"top-{settings.topk}" if cache is not None else "off") if t_ident else None,
-                   "from": {"path": src.name, "sha256": model_sha}, "processes": world,
-                   "eval": {"files": [d for _, d, _ in sets], "tokens_cap": eval_tokens, "context": context,
+        timer.lap("eval_before")
+        run.train(start, eval_before, timer)
+        eval_after = _perplexities(job.model, job.sets, context) if job.sets and rank == 0 else None
+        timer.lap("eval_after")
+        section = {"settings": settings.to_json(), "data": job.data, "teacher": t_ident,
+                   "teacher_cache": cache.description if cache is not None else None,
+                   "from": {"path": job.src.name, "sha256": model_sha}, "processes": world,
+                   "eval": {"files": [d for _, d, _ in job.sets], "tokens_cap": eval_tokens, "context": context,
                             "before": eval_before, "after": eval_after},
-                   "curve": curve}
+                   "curve": run.curve}
         if rank == 0:
-            new_manifest = copy.deepcopy(manifest)
-            if "tune" in manifest:
-                section["previous"] = manifest["tune"]
-            new_manifest["tune"] = section
-            weights = {n: loaded.source.get(n) for n in loaded.source.names()}
-            for n, p, transposed in trained:
-                weights[n] = (p.detach().T if transposed else p.detach()).contiguous().clone()
-            cfg_file = src / "source-config.json"
-            config = json.loads(cfg_file.read_text(encoding="utf-8")) if cfg_file.is_file() else None
-            with atomic_dir(out, force) as tmp:
-                write_model_dir(tmp, weights, new_manifest, loaded.tokenizer, config)
-            ckpt.unlink(missing_ok=True)
+            _write_tuned(job, trained, section)
         _barrier(world)
-        t_write = time.perf_counter() - t2
+        timer.lap("write")
     finally:
         if created:
             import torch.distributed as dist
             dist.destroy_process_group()
-    trained_steps = steps - start
-    return {"out": str(out), "steps": steps, "start_step": start, "tokens": trained_steps * batch * context,
-            "tokens_per_second": trained_steps * batch * context / t_train if t_train > 0 else None,
-            "seconds": {"load": round(t_load, 3), "eval_before": round(t_eval0, 3), "train": round(t_train, 3),
-                        "eval_after": round(t_eval1, 3), "write": round(t_write, 3)},
-            "curve": curve, "eval": {"before": eval_before, "after": eval_after}, "teacher": t_ident,
-            "warnings": warnings_,
-            "teacher_cache": section["teacher_cache"], "settings": settings.to_json(), "processes": world}
+    trained_tokens = (steps - start) * batch * context
+    t_train, stages = timer.total("train"), timer.stages
+    return {"out": str(job.out), "steps": steps, "start_step": start, "tokens": trained_tokens,
+            "tokens_per_second": trained_tokens / t_train if t_train > 0 else None,
+            "seconds": {k: stages.get(k, 0.0) for k in ("load", "eval_before", "train", "eval_after", "write")},
+            "curve": run.curve, "eval": {"before": eval_before, "after": eval_after}, "teacher": t_ident,
+            "warnings": run.warnings, "teacher_cache": section["teacher_cache"], "settings": settings.to_json(),
+            "processes": world}

@@ -16,11 +16,11 @@ import time
 
 import torch
 
-from attncompress import analysis, arch, corpora, evaluate, plan as planlib
+from attncompress import analysis, arch, corpora, evaluate, plan as planlib, strategies
 from attncompress.compress import choose_pairs, factorize_layer, spectra_list
-from attncompress.io.load import load_model, tokens
+from attncompress.loading import load_model, tokens
 from attncompress.model import build
-from attncompress.models import builtin
+from attncompress.builtin import builtin
 from attncompress.texts import token_blocks
 
 
@@ -90,10 +90,10 @@ def main():
             return [s if s.kind != "qk" else dataclasses.replace(s, gains=tuple([1e30] * n + [0.0] * (s.max_units - n)))
                     for s in sp]
         k = args.keep
-        run(f"uniform {k}", planlib.make_plan(sp, sh, k, "uniform"), roots_w)
-        run(f"global {k} (normalised)", planlib.make_plan(sp, sh, k, "global"), roots_w)
-        run(f"global {k} (raw), qk full", planlib.make_plan(held(sh.n_pairs), sh, k, "global", normalise=False), roots_w)
-        run(f"global {k} (raw), qk 28", planlib.make_plan(held(28), sh, k, "global", normalise=False), roots_w)
+        run(f"uniform {k}", strategies.make_plan(sp, sh, k, "uniform"), roots_w)
+        run(f"global {k} (normalised)", strategies.make_plan(sp, sh, k, "global"), roots_w)
+        run(f"global {k} (raw), qk full", strategies.make_plan(held(sh.n_pairs), sh, k, "global", normalise=False), roots_w)
+        run(f"global {k} (raw), qk 28", strategies.make_plan(held(28), sh, k, "global", normalise=False), roots_w)
 
 
 if __name__ == "__main__":

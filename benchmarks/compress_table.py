@@ -14,11 +14,11 @@ import time
 
 import torch
 
-from attncompress import analysis, arch, corpora, evaluate, plan as planlib
+from attncompress import analysis, arch, corpora, evaluate, strategies
 from attncompress.compress import choose_pairs, factorize_layer, spectra_list
-from attncompress.io.load import load_model, tokens
+from attncompress.loading import load_model, tokens
 from attncompress.model import build
-from attncompress.models import builtin
+from attncompress.builtin import builtin
 from attncompress.texts import token_blocks
 
 
@@ -62,7 +62,7 @@ def main():
         print(f"{method}: calibration {t1 - t0:.1f}s, spectra {time.perf_counter() - t1:.1f}s", flush=True)
         for strategy in args.strategies.split(","):
             for keep in [float(k) for k in args.keeps.split(",")]:
-                p = planlib.make_plan(spectra_list(sh, spectra), sh, keep, strategy)
+                p = strategies.make_plan(spectra_list(sh, spectra), sh, keep, strategy)
                 p = choose_pairs(sh, p, spectra)
                 ppl = evaluate_plan(sh, W, roots, p, texts)
                 rows.append((keep, method, strategy, ppl))

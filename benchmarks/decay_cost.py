@@ -56,7 +56,7 @@ def pair_table(m: int, n: int, ranks: list[int], repeat: int) -> list[dict]:
 
 def model_rows(path: str, batch: int, context: int, repeat: int) -> dict:
     """The whole model's penalty (value + backward) against one forward + backward training step."""
-    from attncompress.io.load import load_model
+    from attncompress.loading import load_model
     from attncompress.tune import factor_params
     loaded = load_model(path)
     model = loaded.model

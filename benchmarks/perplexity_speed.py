@@ -13,8 +13,8 @@ import time
 import torch
 
 from attncompress import corpora, evaluate
-from attncompress.io.load import load_model, tokens
-from attncompress.models import builtin
+from attncompress.loading import load_model, tokens
+from attncompress.builtin import builtin
 
 
 class Reference:

@@ -30,9 +30,9 @@ import torch
 from attncompress import evaluate
 from attncompress.compress import compress
 from attncompress.corpora import write_corpus
-from attncompress.io.load import load_model, tokens
-from attncompress.models import resolve
-from attncompress.tune import DEFAULT_DECAY_COEF, tune
+from attncompress.loading import load_model, tokens
+from attncompress.builtin import resolve
+from attncompress.tune import tune
 
 MODEL = "builtin:smollm2-135m"
 
@@ -57,7 +57,8 @@ def main() -> None:
     ap.add_argument("--lr", type=float, default=1e-4)
     ap.add_argument("--seed", type=int, default=0)
     ap.add_argument("--mix", type=float, default=0.5, help="weight of the next-token loss in 'kd' runs")
-    ap.add_argument("--decay-coef", type=float, default=DEFAULT_DECAY_COEF, help="λ of the 'factor' runs")
+    ap.add_argument("--decay-coef", type=float, default=0.01,  # the usual AdamW value (common practice, no source)
+                    help="λ of the 'factor' runs")
     ap.add_argument("--frobenius-coef", type=float, default=1e-8, help="λ of the 'frobenius' comparison runs")
     ap.add_argument("--eval-tokens", type=int, default=4096, help="tokens scored of each held-out text")
     ap.add_argument("--runs", default="frobenius:ce,factor:ce,none:ce,frobenius:kd,factor:kd,none:kd")

@@ -6,7 +6,7 @@ from pathlib import Path
 import pytest
 import torch
 
-from attncompress.io.load import load_model, load_weights  # noqa: F401  (the one import of the loader the tests share)
+from attncompress.loading import load_model, load_weights  # noqa: F401  (the one import of the loader the tests share)
 
 
 def pytest_configure(config):

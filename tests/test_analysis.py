@@ -3,7 +3,7 @@ import numpy as np
 import torch
 
 from attncompress import analysis, factorize as fz
-from attncompress.io.load import load_model
+from attncompress.loading import load_model
 from attncompress.texts import token_blocks
 
 

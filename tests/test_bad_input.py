@@ -19,11 +19,11 @@ import torch
 from click.testing import CliRunner
 from safetensors.torch import load_file, save_file
 
-from attncompress import analysis, arch, plan as planlib
+from attncompress import analysis, arch, plan as planlib, strategies
 from attncompress import compress as pipeline
 from attncompress.cli import main
 from attncompress.errors import CompressError
-from attncompress.io.load import load_model, load_weights
+from attncompress.loading import load_model, load_weights
 from attncompress.io.read import open_source
 from attncompress.io.write import ShardWriter, parse_size
 
@@ -475,7 +475,7 @@ def _one_shot(d: Path, out: Path, keep: float, texts, n_blocks: int, context: in
                                   with_bias_row=not sh.rotary and sh.qkv_bias,
                                   down=weights[f"layers.{i}.ff.down.weight"]) for i in range(sh.n_layers)]
     spectra = [analysis.layer_spectra(sh, weights, i, roots[i]) for i in range(sh.n_layers)]
-    p = planlib.make_plan(pipeline.spectra_list(sh, spectra), sh, keep, strategy)
+    p = strategies.make_plan(pipeline.spectra_list(sh, spectra), sh, keep, strategy)
     p = pipeline.choose_pairs(sh, p, spectra)
     new = {n: t for n, t in weights.items() if not n.startswith("layers.")}
     for i in range(sh.n_layers):

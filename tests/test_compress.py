@@ -7,7 +7,7 @@ import torch
 
 from attncompress import api, plan as planlib
 from attncompress.compress import compress
-from attncompress.io.load import load_model, load_weights
+from attncompress.loading import load_model, load_weights
 from attncompress.model import KVCache
 from conftest import FAMILIES
 

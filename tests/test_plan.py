@@ -7,9 +7,10 @@ import pytest
 
 from attncompress.errors import CompressError
 from attncompress.plan import (
-    STRATEGIES, LayerRanks, MatrixSpectrum, RankPlan, break_even_rank, count_params, ff_dims, ff_kinds,
-    ff_max_rank, full_plan, kv_cache_bytes, make_plan, matrix_layout, plan_global, plan_uniform,
+    LayerRanks, MatrixSpectrum, RankPlan, break_even_rank, count_params, ff_dims, ff_kinds, ff_max_rank, full_plan,
+    kv_cache_bytes, matrix_layout,
 )
+from attncompress.strategies import STRATEGIES, make_plan, plan_global, plan_uniform
 from attncompress.shape import TINY, ModelShape
 
 # SmolLM2-135M-like shape (field values from memory of its config; only the sizes matter here).

@@ -5,7 +5,7 @@ import pytest
 import torch
 
 from attncompress import corpora, evaluate
-from attncompress.io.load import load_model, tokens
+from attncompress.loading import load_model, tokens
 from conftest import minilm_path, reference_nll, require, smollm2_path
 
 pytestmark = pytest.mark.slow

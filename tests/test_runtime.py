@@ -2,7 +2,7 @@
 import pytest
 import torch
 
-from attncompress.io.load import load_model
+from attncompress.loading import load_model
 from attncompress.model import KVCache, apply_rotary, rotary_tables
 from conftest import FAMILIES
 

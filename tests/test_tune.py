@@ -18,7 +18,7 @@ from attncompress.cli import main
 from attncompress.compress import compress
 from attncompress.errors import CompressError
 from attncompress.factorize import product_sq_norm
-from attncompress.io.load import load_model
+from attncompress.loading import load_model
 from conftest import make_reference, require
 
 WORDS = ["<unk>"] + [f"w{i}" for i in range(1, 96)]  # 96 ids, the tiny models' vocabulary
@@ -177,7 +177,7 @@ def test_short_tune_reduces_the_loss_on_its_own_data_through_the_cli(tiny, tmp_p
     assert not torch.equal(w0["layers.0.ff.up.a"], w1["layers.0.ff.up.a"])
     # the tuned directory is a model our runtime opens, whose perplexity is the one the report gives
     from attncompress.evaluate import perplexity
-    from attncompress.io.load import tokens
+    from attncompress.loading import tokens
     tuned = load_model(out)
     ids = tokens(tuned, train.read_text())
     assert perplexity(tuned.model, ids, context=16)["perplexity"] == pytest.approx(after, rel=1e-6)

@@ -1,2 +1,3 @@
 """Reading checkpoints lazily and writing compressed ones."""
-from .read import TensorSource, open_source  # noqa: F401
+from .read import open_source  # noqa: F401
+from .source import TensorSource  # noqa: F401

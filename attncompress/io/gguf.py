@@ -13,7 +13,7 @@ import numpy as np
 import torch
 
 from ..errors import CompressError
-from .read import TensorSource
+from .source import TensorSource
 
 # GGUF tensor names → directory names, for the llama architecture.
 _GLOBAL = {

@@ -20,71 +20,10 @@ from pathlib import Path
 import torch
 
 from ..errors import CompressError
+from .gguf import GGUFSource
+from .source import ST_DTYPES, TensorSource
 
-# safetensors dtype names → (torch dtype, bytes per element)
-_ST_DTYPES = {
-    "F64": (torch.float64, 8), "F32": (torch.float32, 4), "F16": (torch.float16, 2), "BF16": (torch.bfloat16, 2),
-    "I64": (torch.int64, 8), "I32": (torch.int32, 4), "I16": (torch.int16, 2), "I8": (torch.int8, 1),
-    "U8": (torch.uint8, 1), "BOOL": (torch.bool, 1),
-}
-MANIFEST = "attncompress.json"  # marks a directory written by this tool
 MAX_HEADER = 100_000_000  # bytes; the safetensors library's own limit for a header
-
-
-class TensorSource:
-    """Names, shapes and one tensor at a time from a checkpoint.
-
-    Attributes:
-        path: what the user named (file or directory).
-        format: "safetensors", "torch" or "gguf".
-        config: the model's config.json as a dict (for GGUF: built from its metadata), or None.
-        files: every file the tensors come from (for checksums).
-    """
-
-    format = "?"
-
-    def __init__(self, path: Path, config: dict | None):
-        self.path = path
-        self.config = config
-        self._index: dict[str, tuple[tuple[int, ...], str, Path]] = {}  # name → (shape, dtype, file)
-
-    def names(self) -> list[str]:
-        return list(self._index)
-
-    def shape(self, name: str) -> tuple[int, ...]:
-        return self._index[name][0]
-
-    def dtype(self, name: str) -> str:
-        return self._index[name][1]
-
-    def file_of(self, name: str) -> Path:
-        return self._index[name][2]
-
-    @property
-    def files(self) -> list[Path]:
-        return sorted({f for _, _, f in self._index.values()})
-
-    def get(self, name: str) -> torch.Tensor:
-        """One tensor, as stored (GGUF: dequantised float32)."""
-        raise NotImplementedError
-
-    def tokenizer(self):
-        """A `tokenizers.Tokenizer`, or None when the checkpoint has none."""
-        tok = self.path / "tokenizer.json" if self.path.is_dir() else self.path.with_name("tokenizer.json")
-        if not tok.is_file():
-            return None
-        from tokenizers import Tokenizer
-        try:
-            return Tokenizer.from_file(str(tok))
-        except Exception as e:  # the tokenizers library raises a plain Exception
-            raise CompressError(f"{tok}: not a readable tokenizer.json ({str(e).splitlines()[0]})") from None
-
-    def dtypes(self) -> dict[str, int]:
-        """How many tensors of each stored dtype."""
-        out: dict[str, int] = {}
-        for _, dt, _ in self._index.values():
-            out[dt] = out.get(dt, 0) + 1
-        return dict(sorted(out.items()))
 
 
 class SafetensorsSource(TensorSource):
@@ -118,7 +57,7 @@ class SafetensorsSource(TensorSource):
         if got < len(view):
             raise CompressError(f"{f}: tensor {name} ends at byte {end} but the file stops at {begin + got}; "
                                 "the file was truncated after it was opened")
-        return buf.view(_ST_DTYPES[dtype][0]).reshape(shape)
+        return buf.view(ST_DTYPES[dtype][0]).reshape(shape)
 
 
 def _open_readable(path: Path):
@@ -162,7 +101,7 @@ def read_safetensors_header(path: Path) -> dict[str, tuple[tuple[int, ...], str,
     out, spans = {}, []
     for name, info in header.items():
         dtype, shape, start, end = _header_entry(path, name, info)
-        need = math.prod(shape) * _ST_DTYPES[dtype][1]  # exact integers: no overflow on absurd shapes
+        need = math.prod(shape) * ST_DTYPES[dtype][1]  # exact integers: no overflow on absurd shapes
         if end - start != need:
             raise CompressError(f"{path}: tensor {name} spans {end - start} bytes but shape {list(shape)} of {dtype} needs {need}")
         if end > data_size:
@@ -185,8 +124,8 @@ def _header_entry(path: Path, name: str, info) -> tuple[str, tuple[int, ...], in
     dtype, shape, offsets = info["dtype"], info["shape"], info["data_offsets"]
     if not isinstance(dtype, str):
         raise bad(f"dtype {dtype!r}, not a name")
-    if dtype not in _ST_DTYPES:
-        raise CompressError(f"{path}: tensor {name} has unsupported dtype {dtype}; expected one of {', '.join(_ST_DTYPES)}")
+    if dtype not in ST_DTYPES:
+        raise CompressError(f"{path}: tensor {name} has unsupported dtype {dtype}; expected one of {', '.join(ST_DTYPES)}")
     if not isinstance(shape, list) or not all(_is_count(d) for d in shape):
         raise bad(f"shape {shape!r}; expected a list of non-negative whole numbers")
     if not (isinstance(offsets, list) and len(offsets) == 2 and all(_is_count(o) for o in offsets)) \
@@ -274,7 +213,6 @@ def open_source(path: str | os.PathLike) -> TensorSource:
     if suffix == ".safetensors":
         return SafetensorsSource(path, [path], None)
     if suffix == ".gguf":
-        from .gguf import GGUFSource
         return GGUFSource(path)
     if suffix in (".bin", ".pt", ".pth"):
         return TorchSource(path, path, None)

@@ -18,11 +18,11 @@ from pathlib import Path
 import torch
 
 from ..errors import CompressError
-from .read import _ST_DTYPES, MANIFEST
+from .source import MANIFEST, ST_DTYPES
 
 INDEX = "model.safetensors.index.json"
 DEFAULT_SHARD_SIZE = "2GB"
-_DTYPE_NAMES = {dt: name for name, (dt, _) in _ST_DTYPES.items()}
+_DTYPE_NAMES = {dt: name for name, (dt, _) in ST_DTYPES.items()}
 # The order in which the safetensors library lays out tensor data: by dtype (its internal dtype order, descending),
 # then by name. From observing safetensors 0.8's output; tests/test_bad_input.py checks it against save_file.
 _LAYOUT_ORDER = ("I64", "F64", "F32", "I32", "BF16", "F16", "I16", "I8", "U8", "BOOL")
@@ -30,29 +30,70 @@ _COPY_CHUNK = 1 << 23  # bytes per read/write when moving data from the spool in
 
 
 def check_output(out: str | Path, force: bool) -> Path:
-    """Refuse early (before any work) when the output exists without --force or its parent is missing."""
+    """Refuse early (before any work) when the output exists without --force, or cannot be made where it is.
+
+    Missing parent folders are fine: `atomic_dir` and `write_json_atomic` create them when they write.
+    """
     out = Path(out)
     if out.exists() and not force:
         raise CompressError(f"{out}: already exists; choose another --out or pass --force to replace it")
     if out.exists() and not out.is_dir():
         raise CompressError(f"{out}: exists and is not a directory; choose another --out")
-    if not out.parent.is_dir():
-        raise CompressError(f"{out.parent}: no such directory for --out")
+    _existing_ancestor(out)
     return out
+
+
+def _existing_ancestor(path: Path) -> Path:
+    """The nearest ancestor of `path` that exists; it must be a directory."""
+    anc = path.absolute().parent
+    while not anc.exists():
+        anc = anc.parent
+    if not anc.is_dir():
+        raise CompressError(f"{anc}: is a file, so {path} cannot be made below it; choose another --out")
+    return anc
+
+
+def _make_parents(path: Path) -> list[Path]:
+    """Create the missing parent folders of `path`; returns those created, outermost first."""
+    created = []
+    anc = path.absolute().parent
+    while not anc.exists():
+        created.append(anc)
+        anc = anc.parent
+    created.reverse()
+    try:
+        for d in created:
+            d.mkdir()
+    except OSError as e:
+        _remove_created(created)
+        raise CompressError(f"{d}: cannot create the folder ({e.strerror or e}); choose a writable --out") from None
+    return created
+
+
+def _remove_created(created: list[Path]) -> None:
+    """Remove folders `_make_parents` created (innermost first), where they are still empty."""
+    for d in reversed(created):
+        try:
+            d.rmdir()
+        except OSError:
+            pass
 
 
 @contextlib.contextmanager
 def atomic_dir(out: str | Path, force: bool = False):
     """Yield a temporary directory beside `out`; on success it replaces `out` in one rename.
 
-    On any error (disk full, Ctrl-C) the temporary directory is removed and `out` is untouched.
+    Missing parent folders of `out` are created first. On any error (disk full, Ctrl-C) the temporary
+    directory, and the parent folders made for it, are removed and `out` is untouched.
     """
     out = check_output(out, force)
+    created = _make_parents(out)
     tmp = out.parent / f".{out.name}.partial-{os.getpid()}"
     shutil.rmtree(tmp, ignore_errors=True)
     try:
         tmp.mkdir()
     except OSError as e:
+        _remove_created(created)
         raise CompressError(f"{out.parent}: cannot create the output there ({e.strerror or e}); "
                             "choose a writable --out") from None
     try:
@@ -66,9 +107,11 @@ def atomic_dir(out: str | Path, force: bool = False):
             tmp.rename(out)
     except OSError as e:
         shutil.rmtree(tmp, ignore_errors=True)
+        _remove_created(created)
         raise CompressError(f"{out}: writing failed ({e.strerror or e}); nothing was left behind") from None
     except BaseException:
         shutil.rmtree(tmp, ignore_errors=True)
+        _remove_created(created)
         raise
 
 
@@ -84,15 +127,19 @@ def dumps(obj) -> str:
 
 
 def write_json_atomic(path: str | Path, obj) -> None:
+    """Write `obj` as canonical JSON to `path` through a temporary sibling; missing parent folders are made."""
     path = Path(path)
-    if not path.parent.is_dir():
-        raise CompressError(f"{path.parent}: no such directory")
+    if path.is_dir():
+        raise CompressError(f"{path}: is a directory; give a file name for --out")
+    _existing_ancestor(path)
+    created = _make_parents(path)
     tmp = path.with_name(f".{path.name}.partial-{os.getpid()}")
     try:
         tmp.write_text(dumps(obj), encoding="utf-8")
         tmp.replace(path)
     except OSError as e:
         tmp.unlink(missing_ok=True)
+        _remove_created(created)
         raise CompressError(f"{path}: writing failed ({e.strerror or e})") from None
 
 

@@ -7,11 +7,12 @@ from pathlib import Path
 
 import torch
 
-from .. import arch
-from ..errors import CompressError
-from ..model import Transformer, build
-from ..shape import ModelShape
-from .read import MANIFEST, TensorSource, open_source
+from . import arch
+from .errors import CompressError
+from .io.read import open_source
+from .io.source import MANIFEST, TensorSource
+from .model import Transformer, build
+from .shape import ModelShape
 
 
 @dataclass
