@@ -76,7 +76,8 @@ def inspect(path, as_json, heads, kv_heads):
 @click.argument("path")
 @_texts_opt("UTF-8 text file (repeatable).", required=True)
 @click.option("--context", default=512, show_default=True, help="Tokens per window.")
-@click.option("--stride", type=int, help="Window step; below --context only the new tokens are scored. [default: --context]")
+@click.option("--stride", type=int, help="Tokens scored per window after the first (at most --context - 1); smaller "
+              "gives each prediction more earlier text. [default: --context]")
 @click.option("--max-tokens", type=int, help="Score only the first N tokens of the stream.")
 @_json_opt()
 def perplexity(path, texts, context, stride, max_tokens, as_json):
@@ -261,7 +262,8 @@ def tune(path, texts, out, steps, batch, context, lr, seed, decay, decay_coef, p
 @click.argument("b")
 @_texts_opt("Text file (repeatable): perplexity of decoders; for encoders one sentence per line.")
 @click.option("--context", default=512, show_default=True, help="Tokens per perplexity window.")
-@click.option("--stride", type=int, help="Perplexity window step. [default: --context]")
+@click.option("--stride", type=int, help="Tokens scored per perplexity window after the first (at most --context - 1). "
+              "[default: --context]")
 @click.option("--max-tokens", type=int, help="Score only the first N tokens of the text.")
 @click.option("--runs", default=5, show_default=True, help="Timed runs per speed figure (median); 0 skips speed.")
 @click.option("--threads", type=int, help="Threads for the speed measurement [default: torch's]; on cores shared "
