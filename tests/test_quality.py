@@ -37,8 +37,10 @@ def cut(tmp_path_factory):
     plan = json.loads((tmp / "full.json").read_text())
     plan["layers"][0]["ff"].update(up=RANK, down=RANK)
     (tmp / "plan.json").write_text(json.dumps(plan))
+    # the method these objectives describe: dense-path whitening and the down-reach weights of gate/up (no loss
+    # sensitivities, no sequential pass; those are checked in test_allocation.py)
     api.compress(str(tmp / "m"), str(tmp / "c"), plan_file=str(tmp / "plan.json"), texts=[str(tmp / "calib.txt")],
-                 quiet=True, n_blocks=N_BLOCKS, context=CONTEXT)
+                 quiet=True, n_blocks=N_BLOCKS, context=CONTEXT, priced=False, sequential=False)
     return ref.eval(), ids + 1, load_file(str(tmp / "c" / "model.safetensors"))  # word i is token id i + 1
 
 
