@@ -119,15 +119,19 @@ def spectrum(path: str, texts: list[str] | None = None, damping: float = DEFAULT
             "damping": damping, "calibration": an.calibration, "layers": layers}
 
 
-def plan(path: str, out: str | None, keep: float | None = None, strategy: str = DEFAULT_STRATEGY,
+def plan(path: str, out: str | None, keep: float | None = None, strategy: str | None = None,
          texts: list[str] | None = None, damping: float = DEFAULT_DAMPING, quiet: bool = False) -> dict:
-    """Choose ranks under a budget and (with `out`) write the plan JSON for the user to edit."""
+    """Choose ranks under a budget and (with `out`) write the plan JSON for the user to edit.
+
+    `strategy` None: `loss` with calibration text, `uniform` without (`compress.resolve_strategy`).
+    """
+    pipeline.resolve_strategy(strategy, bool(texts))  # refuse before the slow part
     an = pipeline.analyse(path, gen.resolve_texts(texts, path, quiet), damping=damping, quiet=quiet)
     p = pipeline.make_rank_plan(an, keep, strategy, None)
     if out:
         from .io.write import write_json_atomic
         write_json_atomic(out, json.loads(p.to_json()))
-    return {"plan": p, "summary": planlib.summary(an.loaded.shape, p)}
+    return {"plan": p, "summary": pipeline.plan_summary(an, p)}
 
 
 
@@ -259,10 +263,10 @@ RUN_MIX = 0.5  # weight of the next-token loss in run's tune; the rest is distil
 
 
 def run(path: str, out: str, *, keep: float, texts: list[str], eval_texts: list[str] | None = None,
-        strategy: str = DEFAULT_STRATEGY, blend: str = DEFAULT_BLEND, steps: int = 60, batch: int = 4,
-        context: int = 128, lr: float = 1e-4, mix: float = RUN_MIX, decay: str = DEFAULT_DECAY,
-        decay_coef: float = DEFAULT_DECAY_COEF, seed: int = 0, max_eval_tokens: int | None = 4096,
-        force: bool = False, quiet: bool = False) -> dict:
+        strategy: str | None = None, sequential: bool = True, refit: bool = True, blend: str = DEFAULT_BLEND,
+        steps: int = 60, batch: int = 4, context: int = 128, lr: float = 1e-4, mix: float = RUN_MIX,
+        decay: str = DEFAULT_DECAY, decay_coef: float = DEFAULT_DECAY_COEF, seed: int = 0,
+        max_eval_tokens: int | None = 4096, force: bool = False, quiet: bool = False) -> dict:
     """Compress, tune and compare in one go; `out` gets `compressed/`, `tuned/` and `report/`.
 
     The calibration and tuning text is `texts` plus the `blend` (a key of `BLENDS`); each `eval_texts` file is
@@ -290,9 +294,10 @@ def run(path: str, out: str, *, keep: float, texts: list[str], eval_texts: list[
     calib = gen.resolve_texts(calib, path, quiet)
     timer.lap("sampling")
     with atomic_dir(out, force) as tmp:
-        say(f"1/3 compress {path} to keep {keep} of the block matrices ({strategy}, whitened by "
+        say(f"1/3 compress {path} to keep {keep} of the block matrices ({strategy or DEFAULT_STRATEGY}, whitened by "
             f"{', '.join(Path(t).name for t in calib)})")
-        c = pipeline.compress(path, str(tmp / "compressed"), keep=keep, strategy=strategy, texts=calib, quiet=quiet)
+        c = pipeline.compress(path, str(tmp / "compressed"), keep=keep, strategy=strategy, texts=calib, quiet=quiet,
+                              sequential=sequential, refit=refit)
         timer.lap("compress")
         say(f"2/3 tune the factors for at most {steps} steps ({decay} decay, next-token weight {mix})")
         t = tunelib.tune(tmp / "compressed", calib, tmp / "tuned", steps=steps, batch=batch, context=context, lr=lr,

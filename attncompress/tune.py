@@ -53,7 +53,7 @@ reads more tokens than the training blocks hold.
 
 Best step. Every `eval_every` steps (and before the first) the loss without the penalty is measured on the
 held-out blocks; the trained tensors of the lowest held-out loss are the ones written, and the run stops
-early when `patience` evaluations in a row bring no new lowest loss (a tune that memorises its text).
+early when the held-out loss rose at `patience` evaluations in a row (a tune that memorises its text).
 
 Checkpoints go to a sibling file of the output, `.{out}.tune-checkpoint.pt` (trained tensors, AdamW state,
 step, RNG state, loss curve, held-out perplexities at the start, the held-out curve and the best
@@ -775,7 +775,7 @@ class _Run:
         self.pen_value: float | None = None
         self.heldout: list[dict] = []  # {"step", "loss"} per held-out evaluation
         self.best: dict | None = None  # {"step", "loss", "params"} of the lowest held-out loss so far
-        self.stale = 0  # evaluations since the last new best
+        self.stale = 0  # held-out evaluations in a row whose loss rose
         self.stopped: int | None = None  # the step an early stop came at
         self.last = 0  # steps done
 
@@ -859,12 +859,12 @@ class _Run:
     def evaluate(self, step: int) -> bool:
         """Held-out loss after `step` steps; keeps the best tensors; True when the run should stop early."""
         loss = self.heldout_loss()
+        rose = bool(self.heldout) and loss > self.heldout[-1]["loss"]
         self.heldout.append({"step": step, "loss": loss})
         if self.best is None or loss < self.best["loss"]:
             self.best = {"step": step, "loss": loss, "params": {n: p.detach().clone() for n, p, _ in self.trained}}
-            self.stale = 0
-        else:
-            self.stale += 1
+        # a loss still falling towards the best is not a reason to stop; only one that keeps rising is
+        self.stale = self.stale + 1 if rose else 0
         return self.stale >= self.settings.patience
 
     def restore_best(self) -> None:
