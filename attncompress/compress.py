@@ -23,6 +23,7 @@ from .io.write import DEFAULT_SHARD_SIZE
 from .model import build, build_block
 from .models import resolve
 from .progress import Progress, Timer
+from .evaluate import sentence_batch
 from .texts import read_texts, token_blocks
 from .errors import CompressError
 from .factorize import DEFAULT_DAMPING
@@ -193,9 +194,30 @@ def layer_weights(loaded: Loaded, layer: int) -> dict[str, torch.Tensor]:
     return {n: arch.load_tensor(loaded.source, ref) for n, ref in loaded.walk.refs.items() if n.startswith(p)}
 
 
-def _calibration_blocks(loaded, texts: list[str], context: int, n_blocks: int, option: str = "--calib-context"):
-    """Token blocks (n_blocks, context) of the calibration texts, and their description for the manifest."""
+@dataclass
+class Calibration:
+    """The calibration input: token ids (n, s), their mask (n, s) or None, and the manifest's description.
+
+    Decoders read contiguous blocks of the text stream (mask None: every position real). Encoders read real
+    sentences (`texts.split_sentences`), each with the tokenizer's own special tokens, sorted by length
+    (longest first, so that a batch of neighbours wastes little on padding) and padded; mask is 1 at real
+    tokens. The analysis pass and any later pass over the same text take these (ids, mask) batches.
+    """
+    ids: torch.Tensor
+    mask: torch.Tensor | None
+    description: dict
+
+
+def _calibration(loaded, texts: list[str], context: int, n_blocks: int, option: str = "--calib-context") -> Calibration:
+    """The calibration input of a model: blocks for a decoder, sentences for an encoder (see `Calibration`)."""
     context = min(context, loaded.shape.max_positions or context)  # a learned position table caps the context
+    if loaded.shape.causal:
+        return _calibration_blocks(loaded, texts, context, n_blocks, option)
+    return _calibration_sentences(loaded, texts, context, n_blocks)
+
+
+def _calibration_blocks(loaded, texts: list[str], context: int, n_blocks: int, option: str) -> Calibration:
+    """Token blocks (n_blocks, context) of the calibration texts."""
     text, described = read_texts(texts)
     ids = tokens(loaded, text)
     blocks = token_blocks(ids, context, source=", ".join(str(t) for t in texts), option=option)
@@ -204,8 +226,18 @@ def _calibration_blocks(loaded, texts: list[str], context: int, n_blocks: int, o
         idx = torch.linspace(0, blocks.shape[0] - 1, n_blocks).round().long()
         blocks = blocks[idx]
     digest = hashlib.sha256(blocks.numpy().tobytes()).hexdigest()
-    return blocks, {"files": described, "context": context, "blocks": int(blocks.shape[0]),
-                    "tokens": int(blocks.numel()), "tokens_sha256": digest}
+    return Calibration(blocks, None, {"files": described, "context": context, "blocks": int(blocks.shape[0]),
+                                      "tokens": int(blocks.numel()), "tokens_sha256": digest})
+
+
+def _calibration_sentences(loaded, texts: list[str], context: int, n_sentences: int) -> Calibration:
+    """At most n_sentences evenly spaced sentences of the texts, at most `context` tokens each, padded."""
+    ids, mask, described = sentence_batch(loaded, texts, context, n_sentences)
+    order = torch.sort(mask.sum(1), descending=True, stable=True).indices  # longest first
+    ids, mask = ids[order], mask[order]
+    digest = hashlib.sha256(ids.numpy().tobytes() + mask.numpy().tobytes()).hexdigest()
+    return Calibration(ids, mask, {"files": described, "context": context, "sentences": int(ids.shape[0]),
+                                   "tokens": int(mask.sum()), "tokens_sha256": digest})
 
 
 @torch.no_grad()
@@ -221,18 +253,28 @@ def _embed(loaded: Loaded, blocks: torch.Tensor) -> torch.Tensor:
 
 
 @torch.no_grad()
-def _run_block(shape: ModelShape, w: dict[str, torch.Tensor], layer: int, xs: torch.Tensor) -> analysis.LayerStats:
+def _run_block(shape: ModelShape, w: dict[str, torch.Tensor], layer: int, xs: torch.Tensor,
+               mask: torch.Tensor | None = None) -> analysis.LayerStats:
     """Run block `layer` over the hidden states xs (n_blocks, s, d), in place, and return its statistics.
 
-    The same hooks as `analysis.collect_stats` for the whole model (`analysis.stat_hooks`).
+    `mask` (n_blocks, s): 1 at real tokens (padded sentences), None when every position is real. Each batch
+    runs on its own longest sentence only, padded keys are never attended, and the statistics count real
+    tokens only. The same hooks as `analysis.collect_stats` for the whole model (`analysis.stat_hooks`).
     """
     st = analysis.empty_stats(shape)
     blk = build_block(shape, w, layer)
-    handles = analysis.stat_hooks(blk, st, shape)
+    real = analysis.RealTokens()
+    handles = analysis.stat_hooks(blk, st, shape, real)
     try:
         for j in range(0, xs.shape[0], CALIB_BATCH):
+            s, att = xs.shape[1], None
+            if mask is not None:
+                m = mask[j:j + CALIB_BATCH]
+                s = int(m.sum(1).max())
+                real.mask = m[:, :s]
+                att = real.mask.bool()[:, None, None, :]  # (b, 1, 1, s): padded keys are never attended
             # the block's output replaces its input: the next layer's input, and all the state carried over
-            xs[j:j + CALIB_BATCH] = blk(xs[j:j + CALIB_BATCH], mask=None, cache=None, layer=layer, start=0)
+            xs[j:j + CALIB_BATCH, :s] = blk(xs[j:j + CALIB_BATCH, :s], mask=att, cache=None, layer=layer, start=0)
     finally:
         for h in handles:
             h.remove()
@@ -271,14 +313,14 @@ def _release_large_frees() -> None:
         pass
 
 
-def _first_pass(loaded: Loaded, calib, damping: float, scratch: Path | None, quiet: bool, timer: Timer) -> Analysed:
+def _first_pass(loaded: Loaded, calib: Calibration | None, damping: float, scratch: Path | None, quiet: bool, timer: Timer) -> Analysed:
     """Spectra of every layer, one layer in memory at a time (see the pipeline note above)."""
     _release_large_frees()
     sh = loaded.shape
     xs = description = None
     if calib is not None:
-        blocks, description = calib
-        xs = _embed(loaded, blocks)  # (n_blocks, s, d)
+        description = calib.description
+        xs = _embed(loaded, calib.ids)  # (n_blocks, s, d)
         timer.lap("calibrate")
         if scratch is not None:
             scratch.mkdir()
@@ -289,7 +331,7 @@ def _first_pass(loaded: Loaded, calib, damping: float, scratch: Path | None, qui
             timer.lap("load")
             st = None
             if xs is not None:
-                st = _run_block(sh, w, i, xs)
+                st = _run_block(sh, w, i, xs, calib.mask)
                 if scratch is not None:
                     _save_stats(scratch, i, st)
                 timer.lap("calibrate")
@@ -314,7 +356,7 @@ def analyse(path: str, texts: list[str] | None = None, *, damping: float = DEFAU
     """
     timer = Timer()
     loaded = open_model(path, heads, kv_heads)
-    calib = _calibration_blocks(loaded, texts, context, n_blocks, context_option) if texts else None
+    calib = _calibration(loaded, texts, context, n_blocks, context_option) if texts else None
     timer.lap("load")
     return _first_pass(loaded, calib, damping, None, quiet, timer)
 
@@ -422,7 +464,7 @@ def compress(path: str, out: str, *, keep: float | None = None, plan_file: str |
     timer = Timer()
     loaded = open_model(path)
     given = read_plan_file(plan_file, loaded.shape) if plan_file else None
-    calib = _calibration_blocks(loaded, texts, context, n_blocks) if texts else None
+    calib = _calibration(loaded, texts, context, n_blocks) if texts else None
     timer.lap("load")
     sh, src = loaded.shape, loaded.source
     with atomic_dir(out, force) as tmp:

@@ -98,6 +98,28 @@ def encode_batch(tokenizer, lines: list[str], max_len: int) -> tuple[torch.Tenso
     return ids, mask
 
 
+def sentence_batch(loaded, texts: list, max_len: int, n: int | None = None) -> tuple[torch.Tensor, torch.Tensor, list]:
+    """Padded token ids and mask (n, s) of the sentences of text files (`texts.read_sentences`), and their description.
+
+    Each sentence is tokenised alone with the tokenizer's own special tokens and cut to `max_len` tokens; with
+    `n`, at most n sentences, evenly spaced over the texts (so they cover all of them, not only the first).
+
+    Raises:
+        CompressError: unreadable text, no tokenizer, or fewer than 2 sentences.
+    """
+    from .texts import read_sentences
+    sentences, described = read_sentences(texts)
+    if loaded.tokenizer is None:
+        raise CompressError(f"{loaded.path}: no tokenizer found; expected tokenizer.json beside the weights")
+    if len(sentences) < 2:
+        raise CompressError(f"{', '.join(map(str, texts))}: {len(sentences)} sentence(s); an encoder needs at least "
+                            "2 (one per line, or paragraphs separated by blank lines)")
+    if n is not None and len(sentences) > n:
+        sentences = [sentences[int(i)] for i in torch.linspace(0, len(sentences) - 1, n).round().long()]
+    ids, mask = encode_batch(loaded.tokenizer, sentences, max_len)
+    return ids, mask, described
+
+
 def param_groups(weights: dict[str, torch.Tensor]) -> dict[str, int]:
     """Parameter counts by group from canonical names: embeddings, attention, feed-forward, norms, other."""
     groups = {"embeddings": 0, "attention": 0, "feed-forward": 0, "norms": 0, "other": 0}
