@@ -20,7 +20,7 @@ from . import evaluate
 from .errors import CompressError
 from .loading import Loaded, load_weights
 from .model import KVCache, Transformer, build
-from .models import resolve
+from .builtin import resolve
 from .progress import seconds
 from .evaluate import embedding_agreement
 from .texts import read_lines, read_texts
@@ -79,9 +79,8 @@ def model_facts(ld: Loaded, weights: dict) -> dict:
 
 def _full_ranks(shape) -> dict:
     """The most units each kind of matrix can keep: rotary pairs or rank for qk, rank for vo and feed-forward."""
-    from .plan import ff_kinds
     return {"qk": shape.n_pairs if shape.rotary else shape.head_dim, "vo": shape.head_dim,
-            **{k: min(shape.d_model, shape.d_ff) for k in ff_kinds(shape)}}
+            **{k: min(shape.d_model, shape.d_ff) for k in shape.ff_kinds}}
 
 
 def _ratio(b, a):

@@ -21,7 +21,7 @@ from .loading import Loaded, is_compressed, tokens
 from .io.read import open_source
 from .io.write import DEFAULT_SHARD_SIZE
 from .model import build, build_block
-from .models import resolve
+from .builtin import resolve
 from .progress import Progress, Timer
 from .evaluate import sentence_batch
 from .texts import read_texts, token_blocks
