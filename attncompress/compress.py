@@ -211,7 +211,7 @@ class Calibration:
 def _calibration(loaded, texts: list[str], context: int, n_blocks: int, option: str = "--calib-context") -> Calibration:
     """The calibration input of a model: blocks for a decoder, sentences for an encoder (see `Calibration`)."""
     context = min(context, loaded.shape.max_positions or context)  # a learned position table caps the context
-    if loaded.shape.causal:
+    if loaded.shape.is_decoder:
         return _calibration_blocks(loaded, texts, context, n_blocks, option)
     return _calibration_sentences(loaded, texts, context, n_blocks)
 
