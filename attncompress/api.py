@@ -6,18 +6,18 @@ from pathlib import Path
 
 import torch
 
-from . import analysis, evaluate, factorize as fz
+from . import analysis, evaluate, factorize as fz, generate as gen
 from . import plan as planlib
 from . import compare as comparelib
 from . import compress as pipeline
-from .compress import compress  # noqa: F401  (the API's compress)
 from .errors import CompressError
 from .factorize import DEFAULT_DAMPING
 from .loading import load_model, load_weights, tokens
 from .builtin import resolve
 from .strategies import DEFAULT_STRATEGY
 from .texts import read_lines, read_texts
-from .tune import DEFAULT_DECAY, DEFAULT_DECAY_COEF, tune  # noqa: F401  (the API's tune)
+from . import tune as tunelib
+from .tune import DEFAULT_DECAY, DEFAULT_DECAY_COEF
 
 
 def inspect(path: str, heads: int | None = None, kv_heads: int | None = None) -> dict:
@@ -82,11 +82,30 @@ def embed(path: str, text: str, batch: int = 32) -> dict:
     return {"path": str(loaded.path), "lines": lines, "embeddings": e.tolist(), "dim": e.shape[1]}
 
 
+def generate(path: str, prompts: list[str], *, max_tokens: int = 64, temperature: float = 0.0, top_p: float = 1.0,
+             seed: int = 0, batch: int = 8, quiet: bool = False) -> dict:
+    """Continue each prompt with a decoder (greedy at temperature 0); see `generate.generate_ids`."""
+    import time
+    loaded = load_model(resolve(path))
+    if not loaded.model.is_decoder:
+        raise CompressError(f"{loaded.path}: generate needs a decoder; this {loaded.shape.family} model is an encoder")
+    ids = [tokens(loaded, p) for p in prompts]
+    t0 = time.perf_counter()
+    new = gen.generate_ids(loaded.model, ids, max_tokens=max_tokens, temperature=temperature, top_p=top_p, seed=seed,
+                           batch=batch, quiet=quiet)
+    dt = time.perf_counter() - t0
+    n = sum(len(x) for x in new)
+    return {"path": str(loaded.path), "prompts": prompts, "completions": [loaded.tokenizer.decode(x) for x in new],
+            "prompt_ids": ids, "ids": new, "tokens": n, "seconds": dt, "tokens_per_second": n / dt if dt > 0 else None,
+            "settings": {"max_tokens": max_tokens, "temperature": temperature, "top_p": top_p, "seed": seed,
+                         "batch": batch}}
+
+
 # ------------------------------------------------------------------------------------ spectra and plans
 
 def spectrum(path: str, texts: list[str] | None = None, damping: float = DEFAULT_DAMPING, quiet: bool = False) -> dict:
     """All spectra and energy-kept curves of a source model (whitened when texts are given)."""
-    an = pipeline.analyse(path, texts, damping=damping, quiet=quiet)
+    an = pipeline.analyse(path, gen.resolve_texts(texts, path, quiet), damping=damping, quiet=quiet)
     layers = []
     for i, sp in enumerate(an.spectra):
         entry = {"layer": i}
@@ -107,13 +126,30 @@ def plan(path: str, out: str | None, keep: float | None = None, strategy: str | 
     `strategy` None: `loss` with calibration text, `uniform` without (`compress.resolve_strategy`).
     """
     pipeline.resolve_strategy(strategy, bool(texts))  # refuse before the slow part
-    an = pipeline.analyse(path, texts, damping=damping, quiet=quiet)
+    an = pipeline.analyse(path, gen.resolve_texts(texts, path, quiet), damping=damping, quiet=quiet)
     p = pipeline.make_rank_plan(an, keep, strategy, None)
     if out:
         from .io.write import write_json_atomic
         write_json_atomic(out, json.loads(p.to_json()))
     return {"plan": p, "summary": pipeline.plan_summary(an, p)}
 
+
+
+def compress(path: str, out: str, *, texts: list[str] | None = None, quiet: bool = False, **options) -> dict:
+    """`compress.compress`, with `corpus:samples` among the texts first sampled from `path` (cached)."""
+    return pipeline.compress(path, out, texts=gen.resolve_texts(texts, path, quiet), quiet=quiet, **options)
+
+
+def tune(src_dir: str, texts: list[str], out: str, *, teacher: str | None = None, quiet: bool = False,
+         **options) -> dict:
+    """`tune.tune`, with `corpus:samples` among the texts first sampled from the source model (cached)."""
+    if any(gen.is_samples(t) for t in texts or []):
+        from .loading import read_manifest
+        if not Path(src_dir).is_dir():
+            raise CompressError(f"{src_dir}: no such directory; expected a directory written by `attncompress compress`")
+        source, _ = tunelib.find_teacher(None if teacher == "none" else teacher, Path(src_dir), read_manifest(src_dir))
+        texts = gen.resolve_texts(texts, source, quiet)
+    return tunelib.tune(src_dir, texts, out, teacher=teacher, quiet=quiet, **options)
 
 
 def compare(a: str, b: str, texts: list[str] | None = None, *, out: str | None = None, force: bool = False,
@@ -218,39 +254,74 @@ def expand(path: str, out: str, force: bool = False) -> dict:
 
 # -------------------------------------------------------------------------------------------- the whole job
 
+# What `run` adds to the user's text for calibration and tuning (`--blend`): general text keeps the model
+# general when the user's text is small and of one kind (measured: benchmarks/results/, README).
+BLENDS = {"text": (), "samples": (gen.SAMPLES,), "pydoc": ("corpus:pydoc-calibration",),
+          "samples+pydoc": (gen.SAMPLES, "corpus:pydoc-calibration")}
+DEFAULT_BLEND = "samples"
+ENCODER_BLEND = "pydoc"  # an encoder writes no samples; general text of the bundled corpora instead
+RUN_MIX = 0.5  # weight of the next-token loss in run's tune; the rest is distillation from the source
+
+
 def run(path: str, out: str, *, keep: float, texts: list[str], eval_texts: list[str] | None = None,
-        strategy: str | None = None, sequential: bool = True, refit: bool = True, steps: int = 60,
-        batch: int | None = None, context: int = 128, lr: float = 1e-4,
+        strategy: str | None = None, sequential: bool = True, refit: bool = True, blend: str | None = None,
+        steps: int = 60, batch: int | None = None, context: int = 128, lr: float = 1e-4, mix: float = RUN_MIX,
         decay: str = DEFAULT_DECAY, decay_coef: float = DEFAULT_DECAY_COEF, seed: int = 0,
         max_eval_tokens: int | None = 4096, force: bool = False, quiet: bool = False) -> dict:
     """Compress, tune and compare in one go; `out` gets `compressed/`, `tuned/` and `report/`.
 
-    For an encoder the compressed model is compared too (quality only), as "compare_compressed", so the
-    report shows what the tune won back. The whole directory is written atomically: an error or Ctrl-C leaves
-    nothing behind.
+    The calibration and tuning text is `texts` plus the `blend` (a key of `BLENDS`; None: `DEFAULT_BLEND` for a
+    decoder, `ENCODER_BLEND` for an encoder, which cannot write samples); each `eval_texts` file is scored on its
+    own for the original, the compressed and the tuned model (an encoder's compressed model as
+    "compare_compressed"). The whole directory is written atomically: an error or Ctrl-C leaves nothing behind.
     """
+    import sys
     from .io.write import atomic_dir, check_output
+    from .progress import Timer
     from .report import write_compare
+    if blend is None:
+        blend = DEFAULT_BLEND if pipeline.open_model(path).shape.is_decoder else ENCODER_BLEND
+    if blend not in BLENDS:
+        raise CompressError(f"--blend: unknown value {blend!r}; expected one of {', '.join(BLENDS)}")
     check_output(out, force)
     read_texts(texts)  # refuse unreadable text before the long work
     if eval_texts:
         read_texts(eval_texts)
+
+    def say(msg):
+        if not quiet:
+            print(f"[run] {msg}", file=sys.stderr, flush=True)
+    timer = Timer()
+    calib = list(texts) + [t for t in BLENDS[blend] if t not in texts]
+    for t in set(eval_texts or []) & set(calib):
+        say(f"warning: {t} is also calibration and tuning text; its perplexity is not a held-out figure")
+    calib = gen.resolve_texts(calib, path, quiet)
+    timer.lap("sampling")
     with atomic_dir(out, force) as tmp:
-        def say(msg):
-            if not quiet:
-                import sys
-                print(f"[run] {msg}", file=sys.stderr, flush=True)
         say(f"1/3 compress {path} to keep {keep} of the block matrices ({strategy or DEFAULT_STRATEGY}, whitened by "
-            f"{len(texts)} text file(s))")
-        c = compress(path, str(tmp / "compressed"), keep=keep, strategy=strategy, texts=texts, quiet=quiet,
-                     sequential=sequential, refit=refit)
-        say(f"2/3 tune the factors for {steps} steps ({decay} decay)")
-        t = tune(tmp / "compressed", texts, tmp / "tuned", steps=steps, batch=batch, context=context, lr=lr,
-                         seed=seed, decay=decay, decay_coef=decay_coef, teacher=str(resolve(path)), quiet=quiet)
-        say("3/3 compare the original with the tuned model")
-        r = comparelib.compare(path, str(tmp / "tuned"), eval_texts or texts, max_tokens=max_eval_tokens, quiet=quiet)
+            f"{', '.join(Path(t).name for t in calib)})")
+        c = pipeline.compress(path, str(tmp / "compressed"), keep=keep, strategy=strategy, texts=calib, quiet=quiet,
+                              sequential=sequential, refit=refit)
+        timer.lap("compress")
+        say(f"2/3 tune the factors for at most {steps} steps ({decay} decay, next-token weight {mix})")
+        t = tunelib.tune(tmp / "compressed", calib, tmp / "tuned", steps=steps, batch=batch, context=context, lr=lr,
+                         seed=seed, decay=decay, decay_coef=decay_coef, mix=mix, teacher=str(resolve(path)),
+                         quiet=quiet)
+        timer.lap("tune")
+        say("3/3 compare the original with the tuned model, and the compressed model before tuning")
+        scored = eval_texts or texts
+        r = comparelib.compare(path, str(tmp / "tuned"), scored, max_tokens=max_eval_tokens, quiet=quiet)
         rc = None
         if r["quality"] and r["quality"]["kind"] == "embedding":
-            rc = comparelib.compare(path, str(tmp / "compressed"), eval_texts or texts, speed_runs=0, quiet=quiet)
+            rc = comparelib.compare(path, str(tmp / "compressed"), scored, speed_runs=0, quiet=quiet)
+        elif r["quality"]:
+            before = comparelib.score_model(str(tmp / "compressed"), scored, max_tokens=max_eval_tokens, quiet=quiet)
+            for entry, b in zip(r["quality"]["per_text"], before):
+                entry["compressed"] = b["perplexity"][0]
+        timer.lap("compare")
+        r["run"] = {"blend": blend, "calibration": c.get("calibration"), "tune": {
+            k: t[k] for k in ("steps", "steps_run", "heldout", "data", "warnings", "settings")},
+            "seconds": timer.stages}
         write_compare(r, str(tmp / "report"), False)
-    return {"out": str(out), "compress": c, "tune": t, "compare": r, "compare_compressed": rc}
+    return {"out": str(out), "compress": c, "tune": t, "compare": r, "compare_compressed": rc,
+            "seconds": timer.stages}

@@ -89,6 +89,32 @@ def perplexity(path, texts, context, stride, max_tokens, as_json):
 
 @main.command()
 @click.argument("path")
+@click.option("--prompt", "prompts", multiple=True, help="Text to continue (repeatable).")
+@click.option("--prompt-file", type=click.Path(), help="UTF-8 file, one prompt per line.")
+@click.option("--max-tokens", default=64, show_default=True, help="New tokens per prompt.")
+@click.option("--temperature", default=0.0, show_default=True, help="0: greedy; else the sampling temperature.")
+@click.option("--top-p", default=1.0, show_default=True, help="Sample from the smallest set of tokens with this mass.")
+@click.option("--seed", default=0, show_default=True, help="Seed of the sampling (with --batch, fixes the tokens).")
+@click.option("--batch", default=8, show_default=True, help="Prompts of one length decoded together.")
+@_out_opt("Write prompts, completions and token ids as JSON to this file.")
+@_json_opt()
+def generate(path, prompts, prompt_file, max_tokens, temperature, top_p, seed, batch, out, as_json):
+    """Continue prompts with a decoder, source or compressed (KV cache, batched); tokens/s on stderr."""
+    from .texts import read_lines
+    prompts = list(prompts) + (_run(read_lines, prompt_file) if prompt_file else [])
+    if not prompts:
+        raise click.UsageError("give --prompt TEXT or --prompt-file FILE")
+    r = _run(api.generate, path, prompts, max_tokens=max_tokens, temperature=temperature, top_p=top_p, seed=seed,
+             batch=batch)
+    click.echo(f"{r['tokens']} tokens in {r['seconds']:.1f}s ({r['tokens_per_second'] or 0:.1f} tokens/s)", err=True)
+    if out:
+        from .io.write import write_json_atomic
+        _run(write_json_atomic, out, r)
+    _emit(r, as_json, "\n\n".join(p + c for p, c in zip(r["prompts"], r["completions"])))
+
+
+@main.command()
+@click.argument("path")
 @click.option("--text", required=True, type=click.Path(), help="UTF-8 file, one sentence per line.")
 @_json_opt("Print the embeddings as JSON.")
 @_out_opt("Write the embeddings as JSON to this file.")
@@ -231,11 +257,18 @@ def expand(path, out, force):
               show_default=True, help="Encoders: 1 − cosine, or squared error, of the normalised pooled embeddings.")
 @click.option("--hidden-weight", default=0.0, show_default=True,
               help="Encoders: weight of the last hidden states' relative squared error against the teacher's.")
+@click.option("--heldout", default=tunelib.DEFAULT_HELDOUT, show_default=True,
+              help="Fraction of the text's blocks held out; the step of the lowest held-out loss is written (0: off).")
+@click.option("--eval-every", default=tunelib.DEFAULT_EVAL_EVERY, show_default=True,
+              help="Steps between held-out evaluations.")
+@click.option("--patience", default=tunelib.DEFAULT_PATIENCE, show_default=True,
+              help="Stop after this many held-out evaluations without a new lowest loss.")
 @_force_opt("Replace --out, and a stale checkpoint, if they exist.")
 @click.option("--quiet", is_flag=True, help="No progress line.")
 @_json_opt()
 def tune(path, texts, out, steps, batch, context, lr, seed, decay, decay_coef, penalty_every, teacher, temperature,
          mix, topk, eval_texts, eval_tokens, save_every, resume, train_norms, train_dense, embed_loss, hidden_weight,
+         heldout, eval_every, patience,
          force, quiet, as_json):
     """Fine-tune a compressed directory's factors on text (distilling from the source model); also under torchrun."""
     def go():
@@ -245,7 +278,8 @@ def tune(path, texts, out, steps, batch, context, lr, seed, decay, decay_coef, p
                                 temperature=temperature, mix=mix, teacher=teacher, topk=topk,
                                 eval_texts=list(eval_texts), eval_tokens=eval_tokens, save_every=save_every,
                                 resume=resume, train_norms=train_norms, train_dense=train_dense,
-                                embed_loss=embed_loss, hidden_weight=hidden_weight, force=force, quiet=quiet)
+                                embed_loss=embed_loss, hidden_weight=hidden_weight, heldout=heldout,
+                                eval_every=eval_every, patience=patience, force=force, quiet=quiet)
         except tunelib.TuneInterrupted as e:
             click.echo(str(e), err=True)
             sys.exit(130)
@@ -256,6 +290,8 @@ def tune(path, texts, out, steps, batch, context, lr, seed, decay, decay_coef, p
     lines = [f"tuned steps {r['start_step'] + 1}-{r['steps']} in {r['seconds']['train']:.1f}s "
              f"({r['tokens_per_second'] or 0:.0f} tok/s): loss {c[0]['loss']:.4f} -> {c[-1]['loss']:.4f}"
              if c and r["steps"] > r["start_step"] else "nothing left to train"]
+    from .report import tune_lines
+    lines += tune_lines(r)
     before, after = r["eval"]["before"] or {}, r["eval"]["after"] or {}
     for name in after:
         b, a = before[name], after[name]
@@ -301,26 +337,35 @@ def compare(a, b, texts, context, stride, max_tokens, runs, threads, as_json, ou
             dest="eval_texts")
 @_strategy_opt
 @_cut_options
-@click.option("--steps", default=60, show_default=True, help="Tuning steps.")
+@click.option("--blend", type=click.Choice(list(api.BLENDS)), default=None,
+              help="General text added to --text for calibration and tuning: samples (text the source model writes, "
+                   "corpus:samples), pydoc (corpus:pydoc-calibration), both, or none (text). [default: "
+                   f"{api.DEFAULT_BLEND} for a decoder, {api.ENCODER_BLEND} for an encoder]")
+@click.option("--steps", default=60, show_default=True, help="Most tuning steps (the held-out loss picks the step).")
+@click.option("--mix", default=api.RUN_MIX, show_default=True,
+              help="Weight of the next-token loss in the tune; 1 − mix goes to distillation from the source.")
 @click.option("--decay", type=click.Choice(list(tunelib.DECAYS)), default=tunelib.DEFAULT_DECAY, show_default=True,
               help="Penalty while tuning.")
 @click.option("--eval-tokens", default=4096, show_default=True, help="Tokens scored per comparison (0: all).")
 @_out_opt("Directory for compressed/, tuned/ and report/.", required=True)
 @_force_opt()
 @_json_opt("Print the comparison as JSON.")
-def run(path, keep, texts, eval_texts, strategy, sequential, refit, steps, decay, eval_tokens, out, force, as_json):
+def run(path, keep, texts, eval_texts, strategy, sequential, refit, blend, steps, mix, decay, eval_tokens, out, force,
+        as_json):
     """The whole job: compress with calibration, tune the factors, compare before and after."""
-    from .report import compare_text
+    from .report import compare_text, tune_lines
     r = _run(api.run, path, out, keep=keep, texts=list(texts), eval_texts=list(eval_texts) or None, strategy=strategy,
-             sequential=sequential, refit=refit, steps=steps, decay=decay, max_eval_tokens=eval_tokens or None, force=force)
-    before = ""
+             sequential=sequential, refit=refit, blend=blend, steps=steps, mix=mix, decay=decay,
+             max_eval_tokens=eval_tokens or None, force=force)
+    before = []
     if r["compare_compressed"]:
         q = r["compare_compressed"]["quality"]
-        before = (f"\nbefore the tune (compressed/ against A): mean cosine {q['cosine']['mean']:.4f}, p5 "
+        before = [f"before the tune (compressed/ against A): mean cosine {q['cosine']['mean']:.4f}, p5 "
                   f"{q['cosine']['p5']:.4f}, min {q['cosine']['min']:.4f}, top-1 neighbour unchanged "
-                  f"{100 * q['neighbour_agreement']:.1f}%, Spearman {q['spearman']:.4f}")
-    _emit(r["compare"], as_json, compare_text(r["compare"]) + before
-          + f"\nwrote {out}/compressed, {out}/tuned and {out}/report")
+                  f"{100 * q['neighbour_agreement']:.1f}%, Spearman {q['spearman']:.4f}"]
+    times = ", ".join(f"{k} {v:.0f}s" for k, v in r["seconds"].items())
+    _emit(r["compare"], as_json, "\n".join(tune_lines(r["tune"]) + r["tune"]["warnings"] + [
+        compare_text(r["compare"])] + before + [f"time: {times}", f"wrote {out}/compressed, {out}/tuned and {out}/report"]))
 
 
 if __name__ == "__main__":

@@ -110,19 +110,46 @@ def _same_tokens(a: _Model, b: _Model, text: str) -> tuple[list[int], str]:
     return ids_a, "identical on the text"
 
 
+def score_texts(models: list[_Model], texts: list[str], context: int, stride: int | None, max_tokens: int | None,
+                quiet: bool) -> list[dict]:
+    """Perplexity of each decoder on each text separately, each text's token stream cut at `max_tokens`.
+
+    Returns one dict per text: "text" (its description), "tokenizer" (how the ids were checked), "tokens",
+    "context", "stride", and per model (in order) "perplexity" and "nll" (mean nats per token) lists.
+    """
+    ctx = min([context] + [m.loaded.shape.max_positions or context for m in models])
+    out = []
+    for path in texts:
+        text, (desc,) = read_texts([path])
+        ids, tok_note = _same_tokens(models[0], models[-1], text)
+        if max_tokens:
+            ids = ids[:max_tokens]
+        runs = [evaluate.perplexity(m.loaded.model, ids, context=ctx, stride=stride, quiet=quiet,
+                                    label=f"perplexity {m.label} {desc['name']}") for m in models]
+        out.append({"text": desc, "tokenizer": tok_note, "tokens": runs[0]["tokens"], "context": runs[0]["context"],
+                    "stride": runs[0]["stride"], "perplexity": [r["perplexity"] for r in runs],
+                    "nll": [r["nll"] for r in runs]})
+    return out
+
+
+def score_model(path: str, texts: list[str], context: int = 512, stride: int | None = None,
+                max_tokens: int | None = None, quiet: bool = True) -> list[dict]:
+    """`score_texts` of one model given by its path."""
+    return score_texts([_open(path, "C")], texts, context, stride, max_tokens, quiet)
+
+
 def perplexities(a: _Model, b: _Model, texts: list[str], context: int, stride: int | None,
                  max_tokens: int | None, quiet: bool) -> dict:
-    """Perplexity of both decoders on the same token stream, and B's over A's."""
-    text, described = read_texts(texts)
-    ids, tok_note = _same_tokens(a, b, text)
-    if max_tokens:
-        ids = ids[:max_tokens]
-    ctx = min(context, a.loaded.shape.max_positions or context, b.loaded.shape.max_positions or context)
-    pa = evaluate.perplexity(a.loaded.model, ids, context=ctx, stride=stride, quiet=quiet, label="perplexity A")
-    pb = evaluate.perplexity(b.loaded.model, ids, context=ctx, stride=stride, quiet=quiet, label="perplexity B")
-    return {"kind": "perplexity", "texts": described, "tokenizer": tok_note, "tokens": pa["tokens"],
-            "context": pa["context"], "stride": pa["stride"], "a": pa["perplexity"], "b": pb["perplexity"],
-            "nll_a": pa["nll"], "nll_b": pb["nll"], "ratio": pb["perplexity"] / pa["perplexity"]}
+    """Perplexity of both decoders on each text separately (each cut at `max_tokens`), and over all of them."""
+    per = score_texts([a, b], texts, context, stride, max_tokens, quiet)
+    n = sum(p["tokens"] for p in per)
+    # all texts: the mean nats per token over every scored token of every text
+    nll_a, nll_b = (sum(p["nll"][j] * p["tokens"] for p in per) / n for j in (0, 1))
+    return {"kind": "perplexity", "texts": [p["text"] for p in per], "tokenizer": per[0]["tokenizer"], "tokens": n,
+            "context": per[0]["context"], "stride": per[0]["stride"], "a": math.exp(nll_a), "b": math.exp(nll_b),
+            "nll_a": nll_a, "nll_b": nll_b, "ratio": math.exp(nll_b - nll_a),
+            "per_text": [{"name": p["text"]["name"], "tokens": p["tokens"], "a": p["perplexity"][0],
+                          "b": p["perplexity"][1], "ratio": p["perplexity"][1] / p["perplexity"][0]} for p in per]}
 
 
 def _line_sets(texts: list[str] | None, lines: list[str] | None) -> tuple[list[tuple[str, list[str]]], list[dict]]:
@@ -323,9 +350,10 @@ def compare(a: str, b: str, texts: list[str] | None = None, lines: list[str] | N
 
     Args:
         a, b: model paths (directory, .safetensors, .gguf, compressed directory, or builtin:NAME).
-        texts: UTF-8 text files. Decoders: perplexity of the joined text; encoders: one sentence per line.
+        texts: UTF-8 text files. Decoders: perplexity of each text; encoders: one sentence per line.
         lines: sentences for encoders, instead of `texts`.
-        context, stride, max_tokens: perplexity windows (see `evaluate.perplexity`) and a cap on scored tokens.
+        context, stride, max_tokens: perplexity windows (see `evaluate.perplexity`) and a cap on the tokens
+            scored of each text.
         speed_runs: timed runs per speed figure (median reported); None or 0 skips the speed section.
         threads: intra-op threads for the speed section (default: torch's current setting).
         quiet: no progress lines.
@@ -348,8 +376,10 @@ def compare(a: str, b: str, texts: list[str] | None = None, lines: list[str] | N
         - "ratios": B over A for "parameters", "block_matrices", "disk_bytes", "runtime_bytes",
           "kv_bytes_per_token" (null for encoders).
         - "quality": null without text; decoders: {"kind": "perplexity", "texts": [{"name", "bytes", "sha256",
-          "lines"}], "tokenizer" (how the token ids were checked), "tokens", "context", "stride", "a", "b"
-          (perplexities), "nll_a", "nll_b" (nats per token), "ratio" (b / a)}; encoders: {"kind": "embedding",
+          "lines"}], "tokenizer" (how the token ids were checked), "tokens" (all texts), "context", "stride",
+          "per_text": [{"name", "tokens", "a", "b", "ratio"}] (each text scored on its own, its first
+          `max_tokens` tokens), "a", "b" (perplexities over all scored tokens of all texts), "nll_a", "nll_b"
+          (nats per token), "ratio" (b / a)}; encoders: {"kind": "embedding",
           "texts", "tokenizer", "lines", "cosine": {"mean", "p5", "min"}, "neighbour_agreement", "spearman",
           "cosines" (per line), "per_text": [{"name", "lines", "cosine", "neighbour_agreement", "spearman"}] (one
           per text file, neighbours within that file; empty for one file)} (see `evaluate.embedding_agreement`).

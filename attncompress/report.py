@@ -79,6 +79,19 @@ def write_spectrum(r: dict, out: str, force: bool) -> str:
     return "plots in energy.png"
 
 
+def tune_lines(r: dict) -> list[str]:
+    """What a tune read and which step it wrote: repeats per text, the held-out curve, an early stop."""
+    lines = ["texts: " + ", ".join(f"{d['name']} ({d['blocks']} blocks, read {d['repeats']:.1f}×)" if "repeats" in d
+                                   else d["name"] for d in r["data"]["files"])]
+    h = r.get("heldout")
+    if h:
+        curve = ", ".join(f"{c['step']}: {c['loss']:.4f}" for c in h["curve"])
+        lines.append(f"held-out loss ({h['blocks']} blocks) by step: {curve}")
+        stop = f"; stopped early at step {h['stopped_early_at']}" if h["stopped_early_at"] else ""
+        lines.append(f"wrote the weights of step {h['best_step']} (lowest held-out loss {h['best_loss']:.4f}){stop}")
+    return lines
+
+
 # ------------------------------------------------------------------------------------------------ compare
 
 def _bytes(n: int) -> str:
@@ -115,7 +128,7 @@ def compare_rows(r: dict) -> list[tuple[str, str, str, str]]:
         rows.append(("KV cache bytes/token", f"{a['kv_bytes_per_token']:,}", f"{b['kv_bytes_per_token']:,}",
                      _fmt(ratio["kv_bytes_per_token"], ".3f")))
     if q and q["kind"] == "perplexity":
-        rows.append((f"perplexity ({q['tokens']:,} tokens)", _ppl(q["a"]), _ppl(q["b"]), _ppl(q["ratio"])))
+        rows += _perplexity_rows(q)
     elif q:
         c = q["cosine"]
         rows.append((f"cosine A·B per line ({q['lines']} lines)", "", f"mean {c['mean']:.4f} p5 {c['p5']:.4f} "
@@ -142,6 +155,18 @@ def compare_rows(r: dict) -> list[tuple[str, str, str, str]]:
             rows.append((f"batch of {t['sentences']} sentences (ms)", f"{t['a_ms']:.1f}", f"{t['b_ms']:.1f}",
                          f"speedup {t['speedup']:.2f}x"))
             rows.append(("sentences/s", f"{t['a_sentences_s']:.0f}", f"{t['b_sentences_s']:.0f}", ""))
+    return rows
+
+
+def _perplexity_rows(q: dict) -> list[tuple[str, str, str, str]]:
+    """One row per text (and, from `run`, the compressed model before tuning below it); all texts when several."""
+    rows = []
+    for t in q.get("per_text") or []:
+        rows.append((f"perplexity {t['name']} ({t['tokens']:,} tokens)", _ppl(t["a"]), _ppl(t["b"]), _ppl(t["ratio"])))
+        if "compressed" in t:
+            rows.append(("  compressed, before tuning", "", _ppl(t["compressed"]), _ppl(t["compressed"] / t["a"])))
+    if len(rows) != 1:
+        rows.append((f"perplexity, all texts ({q['tokens']:,} tokens)", _ppl(q["a"]), _ppl(q["b"]), _ppl(q["ratio"])))
     return rows
 
 
@@ -240,9 +265,12 @@ def _rank_plot(plt, r: dict, path) -> bool:
     return True
 
 
-def _bar_plot(plt, labels: list[str], values: list[list[float]], series: list[str], ylabel: str, path) -> None:
-    """Grouped bars: one group per label, one bar per series."""
+def _bar_plot(plt, labels: list[str], values: list[list[float]], series: list[str], ylabel: str, path,
+              log: bool = False) -> None:
+    """Grouped bars: one group per label, one bar per series (on a log axis with `log`)."""
     fig, ax = plt.subplots(figsize=(1.2 + 1.6 * len(labels), 2.8))
+    if log:
+        ax.set_yscale("log")
     width = 0.8 / len(series)
     for i, name in enumerate(series):
         ax.bar([j + i * width for j in range(len(labels))], [v[i] for v in values], width, label=name)
@@ -271,6 +299,15 @@ def _cosine_plot(plt, cosines: list[float], path) -> None:
     plt.close(fig)
 
 
+def _quality_plot(plt, q: dict, path) -> None:
+    """Perplexity per text of A and B, and of the compressed model before tuning when `run` measured it."""
+    per = q.get("per_text") or [{"name": "all texts", "a": q["a"], "b": q["b"]}]
+    staged = all("compressed" in t for t in per)
+    series = ["original (A)", "compressed", "tuned (B)"] if staged else ["A", "B"]
+    values = [[t["a"], t["compressed"], t["b"]] if staged else [t["a"], t["b"]] for t in per]
+    _bar_plot(plt, [t["name"].removeprefix("corpus:") for t in per], values, series, "perplexity", path, log=True)
+
+
 def write_compare(r: dict, out: str, force: bool) -> str:
     """compare.json, report.md and (with matplotlib) ranks.png, quality.png, cosines.png (encoders) and speed.png."""
     from .io.write import atomic_dir, dumps
@@ -288,7 +325,7 @@ def write_compare(r: dict, out: str, force: bool) -> str:
                 plots.append("ranks.png")
             q = r["quality"]
             if q and q["kind"] == "perplexity":
-                _bar_plot(plt, ["perplexity"], [[q["a"], q["b"]]], ["A", "B"], "perplexity", tmp / "quality.png")
+                _quality_plot(plt, q, tmp / "quality.png")
                 plots.append("quality.png")
             elif q:
                 c = q["cosine"]

@@ -24,6 +24,9 @@ def _read_one(path: str | Path) -> tuple[str, dict]:
     """Read one UTF-8 text file (or `corpus:NAME`, a built-in corpus); return its text and its description."""
     if str(path).startswith("corpus:"):
         name = str(path).split(":", 1)[1]
+        if name == "samples" or name.startswith("samples:"):
+            raise CompressError(f"{path}: text sampled from the source model is made by compress, tune, run, plan "
+                                "and spectrum, which know the model; here give a file or another corpus")
         if name not in CORPORA:
             raise CompressError(f"{path}: unknown built-in corpus; expected one of "
                                 + ", ".join(f"corpus:{n}" for n in CORPORA))

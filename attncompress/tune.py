@@ -54,12 +54,20 @@ Penalty (`decay`, the registry `DECAYS`; the default is Frobenius decay with λ 
 Schedule. Linear warm-up over the first `WARMUP_FRACTION` of the steps, then cosine decay to
 `LR_FLOOR` × lr at the end (both common practice, no source).
 
-Data. The text is cut into non-overlapping blocks; the blocks are visited in an endless stream of seeded
-permutations (one per epoch), step t taking stream positions [t·batch, (t + 1)·batch). The data position
-is therefore the step, and the order depends only on the seed and the number of blocks.
+Data. Each text is cut into non-overlapping blocks of its own; `heldout` of all blocks, evenly spaced (so
+every text gives its share), are held out and never trained on. The training blocks are visited in an
+endless stream of seeded permutations (one per epoch), step t taking stream positions [t·batch,
+(t + 1)·batch). The data position is therefore the step, and the order depends only on the seed and the
+number of blocks. The report says how many times each text's blocks were visited, and warns when the run
+reads more tokens than the training blocks hold.
+
+Best step. Every `eval_every` steps (and before the first) the loss without the penalty is measured on the
+held-out blocks; the trained tensors of the lowest held-out loss are the ones written, and the run stops
+early when `patience` evaluations in a row bring no new lowest loss (a tune that memorises its text).
 
 Checkpoints go to a sibling file of the output, `.{out}.tune-checkpoint.pt` (trained tensors, AdamW state,
-step, RNG state, loss curve, held-out perplexities at the start), written to a temporary file and renamed,
+step, RNG state, loss curve, held-out perplexities at the start, the held-out curve and the best
+step's tensors), written to a temporary file and renamed,
 so an interrupted run always leaves the last complete one. `resume` checks that the settings, data, model
 and teacher are the ones that wrote it, and continues bit for bit as the uninterrupted run would (for the
 same number of processes). The checkpoint is removed once the output directory is written.
@@ -97,10 +105,13 @@ DEFAULT_MIX = 0.5
 DEFAULT_TEMPERATURE = 1.0
 DEFAULT_TOPK = 64
 DEFAULT_PENALTY_EVERY = 4
+DEFAULT_HELDOUT = 0.1  # fraction of the training blocks held out to pick the best step
+DEFAULT_EVAL_EVERY = 10  # steps between held-out evaluations
+DEFAULT_PATIENCE = 3  # held-out evaluations without a new best before the run stops
 WARMUP_FRACTION = 0.1
 LR_FLOOR = 0.1
 CACHE_BYTES = 2 << 30  # teacher top-k cache limit per process
-CHECKPOINT_FORMAT = 1
+CHECKPOINT_FORMAT = 2
 
 
 class TuneInterrupted(KeyboardInterrupt):
@@ -124,6 +135,9 @@ class TuneSettings:
     train_norms: bool
     train_dense: bool
     warmup: int
+    heldout: float  # fraction of the blocks held out
+    eval_every: int
+    patience: int
     embed_loss: str | None = None  # encoders: "cos" or "mse" on the normalised pooled embedding
     hidden_weight: float = 0.0  # encoders: weight of the relative squared error of the last hidden states
 
@@ -273,6 +287,18 @@ def lr_multiplier(step: int, steps: int, warmup: int, floor: float = LR_FLOOR) -
     return floor + (1 - floor) * 0.5 * (1 + math.cos(math.pi * progress))
 
 
+def heldout_indices(n_blocks: int, fraction: float) -> torch.Tensor:
+    """Indices of the held-out blocks: m = round(fraction · n) of them (at least one when fraction > 0 and
+    n ≥ 2, at most n − 1), block ⌊(k + ½)·n/m⌋ for k = 0..m−1, evenly spaced and distinct.
+
+    Example: n_blocks=10, fraction=0.2 → tensor([2, 7]); fraction=0 → no blocks.
+    """
+    if fraction <= 0 or n_blocks < 2:
+        return torch.zeros(0, dtype=torch.long)
+    m = min(n_blocks - 1, max(1, round(fraction * n_blocks)))
+    return ((torch.arange(m, dtype=torch.float64) + 0.5) * n_blocks / m).floor().long()
+
+
 def block_order(n_blocks: int, seed: int, start: int, count: int) -> torch.Tensor:
     """Block indices at positions start..start+count-1 of the stream of seeded permutations, one per epoch.
 
@@ -420,6 +446,52 @@ def _check_options(steps, batch, context, lr, decay, decay_coef, penalty_every, 
         positive_int("eval-tokens", eval_tokens)
     if batch % world:
         raise CompressError(f"--batch {batch} does not split over {world} processes; give a multiple of {world}")
+
+
+def _check_heldout(heldout, eval_every, patience) -> None:
+    """One-line errors for the held-out options."""
+    if not (isinstance(heldout, (int, float)) and 0 <= heldout < 1):
+        raise CompressError(f"--heldout: must be a fraction in [0, 1) of the training blocks, got {heldout!r}")
+    for name, v in (("eval-every", eval_every), ("patience", patience)):
+        if isinstance(v, bool) or not isinstance(v, int) or v <= 0:
+            raise CompressError(f"--{name}: must be a positive whole number, got {v!r}")
+
+
+def repeats(owner: torch.Tensor, n_texts: int, seed: int, steps: int, batch: int) -> list[float]:
+    """How many times, on average, each text's training blocks are visited in `steps` steps of `batch` blocks.
+
+    Example: 4 blocks of text 0 and 4 of text 1, 2 steps of 8 → [2.0, 2.0].
+    """
+    seen = torch.bincount(block_order(len(owner), seed, 0, steps * batch), minlength=len(owner)).double()  # (n,)
+    return [float(seen[owner == i].mean()) if (owner == i).any() else 0.0 for i in range(n_texts)]
+
+
+def _warn_repeats(run: "_Run", job: _Job, s: TuneSettings) -> None:
+    """Record each text's repeats in the data description; warn when the run reads more than the text holds.
+
+    Decoders only: an encoder's sentences carry no per-text owner (nor, yet, a held-out slice).
+    """
+    if job.mask is not None:
+        return
+    reps = repeats(job.owner, len(job.data["files"]), s.seed, s.steps, s.batch)
+    for desc, r in zip(job.data["files"], reps):
+        desc["repeats"] = round(r, 3)
+    if s.steps * s.batch * s.context > job.data["tokens"] and run.rank == 0:
+        note = (f"warning: {s.steps} steps × {s.batch} blocks × {s.context} tokens read {s.steps * s.batch * s.context:,} "
+                f"tokens from {job.data['tokens']:,} training tokens; the texts are repeated "
+                + ", ".join(f"{d['name']} {r:.1f}×" for d, r in zip(job.data["files"], reps))
+                + " (the held-out loss picks the step written; more or more varied text helps)")
+        run.warnings.append(note)
+        if not run.quiet:
+            sys.stderr.write(note + "\n")
+
+
+def _heldout_report(run: "_Run") -> dict | None:
+    """The held-out curve, the step written and where the run stopped (None without a held-out slice)."""
+    if run.best is None:
+        return None
+    return {"blocks": len(run.job.held), "curve": run.heldout, "best_step": run.best["step"],
+            "best_loss": run.best["loss"], "stopped_early_at": run.stopped}
 
 
 def _init_distributed() -> tuple[int, int, bool]:
@@ -634,6 +706,8 @@ class _Job:
     manifest: dict
     loaded: object  # loading.Loaded
     blocks: torch.Tensor  # (n, s) training blocks, or an encoder's padded sentences
+    owner: torch.Tensor  # (n,) which text each training block comes from
+    held: torch.Tensor  # (m, s) held-out blocks of the same texts, never trained on (none for an encoder)
     data: dict  # the manifest's description of the training data
     sets: list  # (file name, description, token ids or (ids, mask) of sentences) per held-out file
     force: bool  # replace an existing output
@@ -649,7 +723,7 @@ class _Job:
         return self.data["tokens"] / self.blocks.shape[0]
 
 
-def _open_job(src_dir, texts, out, *, context, eval_texts, eval_tokens, resume, force) -> _Job:
+def _open_job(src_dir, texts, out, *, context, heldout, eval_texts, eval_tokens, resume, force) -> _Job:
     """Check the paths, load the model and cut the text into blocks (errors in the order a user meets them)."""
     src = Path(src_dir)
     if not src.exists():
@@ -678,13 +752,23 @@ def _open_job(src_dir, texts, out, *, context, eval_texts, eval_tokens, resume, 
                 for p, d in zip(eval_texts or [], read_texts(eval_texts)[1] if eval_texts else [])]
         data = {"files": described, "context": context, "sentences": ids.shape[0], "tokens": int(mask.sum()),
                 "tokens_sha256": hashlib.sha256(ids.numpy().tobytes() + mask.numpy().tobytes()).hexdigest()}
-        return _Job(src, out, ckpt, manifest, loaded, ids, data, sets, force, mask)
-    text, described = read_texts(texts)
-    blocks = token_blocks(tokens(loaded, text), context, source=", ".join(str(t) for t in texts))  # (n, s)
+        owner = torch.zeros(len(ids), dtype=torch.long)
+        return _Job(src, out, ckpt, manifest, loaded, ids, owner, ids[:0], data, sets, force, mask)
+    parts, described = [], []
+    for path in texts:
+        text, (desc,) = read_texts([path])
+        parts.append(token_blocks(tokens(loaded, text), context, source=str(path)))  # (n_i, s)
+        described.append(desc)
+    blocks = torch.cat(parts)  # (n, s)
+    owner = torch.cat([torch.full((len(b),), i) for i, b in enumerate(parts)])  # (n,)
+    keep = torch.ones(len(blocks), dtype=torch.bool)
+    keep[heldout_indices(len(blocks), heldout)] = False
+    for desc, i in zip(described, range(len(parts))):
+        desc.update(blocks=int((owner[keep] == i).sum()), heldout_blocks=int((owner[~keep] == i).sum()))
     sets = _eval_sets(loaded, eval_texts, eval_tokens, context)
-    data = {"files": described, "context": context, "blocks": blocks.shape[0], "tokens": int(blocks.numel()),
-            "tokens_sha256": hashlib.sha256(blocks.numpy().tobytes()).hexdigest()}
-    return _Job(src, out, ckpt, manifest, loaded, blocks, data, sets, force)
+    data = {"files": described, "context": context, "blocks": int(keep.sum()), "heldout_blocks": int((~keep).sum()),
+            "tokens": int(blocks[keep].numel()), "tokens_sha256": hashlib.sha256(blocks.numpy().tobytes()).hexdigest()}
+    return _Job(src, out, ckpt, manifest, loaded, blocks[keep], owner[keep], blocks[~keep], data, sets, force)
 
 
 def _load_teacher(teacher: str | None, job: _Job, mix: float) -> tuple[Transformer | None, dict | None]:
@@ -796,6 +880,7 @@ class _Run:
     opt: torch.optim.AdamW
     trained: list
     teacher: TeacherCache | None
+    held_teacher: TeacherCache | None  # targets of the held-out blocks
     fingerprint: dict
     rank: int
     world: int
@@ -813,6 +898,11 @@ class _Run:
         self.curve: list[dict] = []
         self.warnings: list[str] = []
         self.pen_value: float | None = None
+        self.heldout: list[dict] = []  # {"step", "loss"} per held-out evaluation
+        self.best: dict | None = None  # {"step", "loss", "params"} of the lowest held-out loss so far
+        self.stale = 0  # evaluations since the last new best
+        self.stopped: int | None = None  # the step an early stop came at
+        self.last = 0  # steps done
 
     def resume(self) -> tuple[int, dict | None]:
         """Load the checkpoint into the parameters, optimiser, RNG and curve; (its step, its eval_before)."""
@@ -825,6 +915,7 @@ class _Run:
         torch.set_rng_state(state["rng"])
         self.curve = state["curve"]
         self.pen_value = self.curve[-1]["penalty"] if self.curve else None
+        self.heldout, self.best, self.stale = state["heldout"], state["best"], state["stale"]
         return state["step"], state["eval_before"]
 
     def _penalty(self, step: int, loss: torch.Tensor) -> torch.Tensor | None:
@@ -880,23 +971,65 @@ class _Run:
                 "format": CHECKPOINT_FORMAT, "fingerprint": self.fingerprint, "step": step,
                 "params": {n: p.detach().clone() for n, p, _ in self.trained},
                 "optimizer": self.opt.state_dict(), "rng": torch.get_rng_state(), "curve": self.curve,
-                "eval_before": eval_before})
+                "eval_before": eval_before, "heldout": self.heldout, "best": self.best, "stale": self.stale})
         _barrier(self.world)
 
+    @torch.no_grad()
+    def heldout_loss(self) -> float:
+        """The loss without the penalty over the held-out blocks (mean over blocks, `batch` at a time)."""
+        held, b = self.job.held, self.settings.batch
+        total = 0.0
+        for i in range(0, len(held), b):
+            idx = torch.arange(i, min(i + b, len(held)))
+            targets = self.held_teacher.batch(idx) if self.held_teacher is not None else None
+            loss, _ = step_loss(self.job.model(held[idx]), held[idx], targets, self.weights,
+                                self.settings.temperature)
+            total += float(loss) * len(idx)
+        return total / len(held)
+
+    def evaluate(self, step: int) -> bool:
+        """Held-out loss after `step` steps; keeps the best tensors; True when the run should stop early."""
+        loss = self.heldout_loss()
+        self.heldout.append({"step": step, "loss": loss})
+        if self.best is None or loss < self.best["loss"]:
+            self.best = {"step": step, "loss": loss, "params": {n: p.detach().clone() for n, p, _ in self.trained}}
+            self.stale = 0
+        else:
+            self.stale += 1
+        return self.stale >= self.settings.patience
+
+    def restore_best(self) -> None:
+        """Put the tensors of the lowest held-out loss back into the model (no-op without a held-out slice)."""
+        if self.best is not None:
+            named = {n: p for n, p, _ in self.trained}
+            with torch.no_grad():
+                for n, t in self.best["params"].items():
+                    named[n].copy_(t)
+
     def train(self, start: int, eval_before, timer: Timer) -> None:
-        """Steps start..steps-1 with a progress line and checkpoints; Ctrl-C becomes TuneInterrupted."""
+        """Steps start..steps-1 with a progress line, held-out checks and checkpoints; Ctrl-C becomes TuneInterrupted."""
         s = self.settings
         last_ckpt = start if start else None
-        step = start
+        step = self.last = start
         label = "tune" if start == 0 else f"tune (from step {start})"
+        held = len(self.job.held) > 0
+        if held and start == 0:
+            self.evaluate(0)
         try:
             with Progress(s.steps - start, label, unit="step", quiet=self.quiet or self.rank != 0) as bar:
                 for step in range(start, s.steps):
                     self.curve.append(self.step(step))
+                    self.last = step + 1
                     dt = timer.lap("train")
+                    stop = held and (self.last % s.eval_every == 0 or self.last == s.steps) and self.evaluate(self.last)
                     bar.update(1, step=f"{step + 1}/{s.steps}", loss=self.curve[-1]["loss"],
+                               heldout=self.heldout[-1]["loss"] if held else "-",
                                penalty=self.pen_value if self.pen_value is not None else "-",
                                tok_s=f"{s.batch * self.job.tokens_per_item / dt:.0f}")
+                    timer.lap("heldout")
+                    if stop and self.last < s.steps:
+                        self.stopped = self.last
+                        break
                     if self.save_every and (step + 1) % self.save_every == 0 and step + 1 < s.steps:
                         self._checkpoint(step + 1, eval_before)
                         last_ckpt = step + 1
@@ -934,7 +1067,8 @@ def tune(src_dir: str | Path, texts: list[str | Path], out: str | Path, *, steps
          temperature: float = DEFAULT_TEMPERATURE, mix: float = DEFAULT_MIX, teacher: str | None = None,
          topk: int = DEFAULT_TOPK, eval_texts: list[str | Path] | None = None, eval_tokens: int | None = None,
          save_every: int = 100, resume: bool = False, train_norms: bool = False, train_dense: bool = False,
-         embed_loss: str = DEFAULT_EMBED_LOSS, hidden_weight: float = 0.0, force: bool = False,
+         embed_loss: str = DEFAULT_EMBED_LOSS, hidden_weight: float = 0.0, heldout: float = DEFAULT_HELDOUT,
+         eval_every: int = DEFAULT_EVAL_EVERY, patience: int = DEFAULT_PATIENCE, force: bool = False,
          quiet: bool = False) -> dict:
     """Fine-tune the factors of a compressed directory on text and write the tuned directory.
 
@@ -955,10 +1089,13 @@ def tune(src_dir: str | Path, texts: list[str | Path], out: str | Path, *, steps
         train_norms, train_dense: also train the norm weights; also the dense feed-forward matrices.
         embed_loss, hidden_weight: an encoder's embedding loss ("cos" | "mse") and the weight of its hidden-state
             term (0: none); decoders ignore them.
+        heldout, eval_every, patience: fraction of the blocks held out, steps between held-out evaluations,
+            evaluations without a new best before stopping (see "Best step" in the module docstring).
         force, quiet: replace `out` and a stale checkpoint; no progress line.
 
     Returns:
-        A report dict: out, steps, tokens, seconds, tokens_per_second, curve, eval, teacher, settings.
+        A report dict: out, steps, steps_run, tokens, seconds, tokens_per_second, curve, heldout, data (with
+        the repeats of each text), eval, teacher, settings, warnings.
 
     Raises:
         CompressError: a bad option, a missing or too short text, a directory that is not a compressed
@@ -969,8 +1106,9 @@ def tune(src_dir: str | Path, texts: list[str | Path], out: str | Path, *, steps
     world_size = max(1, int(os.environ.get("WORLD_SIZE", "1")))
     _check_options(steps, batch or world_size, context, lr, decay, decay_coef, penalty_every, temperature, mix, topk,
                    save_every, eval_tokens, world_size, embed_loss, hidden_weight)
-    job = _open_job(src_dir, texts, out, context=context, eval_texts=eval_texts, eval_tokens=eval_tokens,
-                    resume=resume, force=force)
+    _check_heldout(heldout, eval_every, patience)
+    job = _open_job(src_dir, texts, out, context=context, heldout=heldout, eval_texts=eval_texts,
+                    eval_tokens=eval_tokens, resume=resume, force=force)
     encoder = job.mask is not None
     batch = batch or (DEFAULT_SENTENCE_BATCH if encoder else 4)
     _check_options(steps, batch, context, lr, decay, decay_coef, penalty_every, temperature, mix, topk, save_every,
@@ -982,20 +1120,22 @@ def tune(src_dir: str | Path, texts: list[str | Path], out: str | Path, *, steps
                             train_norms=train_norms, train_dense=train_dense,
                             warmup=max(1, round(WARMUP_FRACTION * steps)),
                             embed_loss=embed_loss if encoder else None,
-                            hidden_weight=float(hidden_weight) if encoder else 0.0)
+                            hidden_weight=float(hidden_weight) if encoder else 0.0,
+                            heldout=float(heldout), eval_every=eval_every, patience=patience)
     model_sha = _sha256_file(job.src / "model.safetensors")
     fingerprint = {"settings": json.dumps(settings.to_json(), sort_keys=True), "data": job.data["tokens_sha256"],
                    "model": model_sha, "teacher": json.dumps(t_ident, sort_keys=True)}
     opt, trained = _optimizer(job.model, settings)
     rank, world, created = _init_distributed()
     try:
-        cache = None
+        cache = held_cache = None
         if encoder:
             cache = SentenceTeacher(teacher_model, job.blocks, job.mask, settings.hidden_weight > 0)
         elif teacher_model is not None:
             touched = min(job.blocks.shape[0], steps * (batch // world))
             cache = TeacherCache(teacher_model, job.blocks, topk, settings.temperature, touched)
-        run = _Run(job, settings, opt, trained, cache, fingerprint, rank, world, save_every, quiet)
+            held_cache = TeacherCache(teacher_model, job.held, topk, settings.temperature, len(job.held))
+        run = _Run(job, settings, opt, trained, cache, held_cache, fingerprint, rank, world, save_every, quiet)
         start, eval_before = run.resume() if resume else (0, None)
         timer.lap("load")
         if eval_before is None and job.sets:
@@ -1003,7 +1143,9 @@ def tune(src_dir: str | Path, texts: list[str | Path], out: str | Path, *, steps
                 eval_before = _held_out(job, teacher_model, context)
             _barrier(world)
         timer.lap("eval_before")
+        _warn_repeats(run, job, settings)
         run.train(start, eval_before, timer)
+        run.restore_best()
         eval_after = _held_out(job, teacher_model, context) if job.sets and rank == 0 else None
         timer.lap("eval_after")
         section = {"settings": settings.to_json(), "data": job.data, "teacher": t_ident,
@@ -1011,7 +1153,7 @@ def tune(src_dir: str | Path, texts: list[str | Path], out: str | Path, *, steps
                    "from": {"path": job.src.name, "sha256": model_sha}, "processes": world,
                    "eval": {"files": [d for _, d, _ in job.sets], "tokens_cap": eval_tokens, "context": context,
                             "before": eval_before, "after": eval_after},
-                   "curve": run.curve}
+                   "curve": run.curve, "heldout": _heldout_report(run)}
         if rank == 0:
             _write_tuned(job, trained, section)
         _barrier(world)
@@ -1020,11 +1162,13 @@ def tune(src_dir: str | Path, texts: list[str | Path], out: str | Path, *, steps
         if created:
             import torch.distributed as dist
             dist.destroy_process_group()
-    trained_tokens = round((steps - start) * batch * job.tokens_per_item)
+    trained_tokens = round((run.last - start) * batch * job.tokens_per_item)
     t_train, stages = timer.total("train"), timer.stages
-    return {"out": str(job.out), "steps": steps, "start_step": start, "tokens": trained_tokens,
+    return {"out": str(job.out), "steps": steps, "steps_run": run.last, "start_step": start, "tokens": trained_tokens,
             "tokens_per_second": trained_tokens / t_train if t_train > 0 else None,
-            "seconds": {k: stages.get(k, 0.0) for k in ("load", "eval_before", "train", "eval_after", "write")},
+            "seconds": {k: stages.get(k, 0.0) for k in ("load", "eval_before", "train", "heldout", "eval_after",
+                                                        "write")},
+            "heldout": section["heldout"], "data": job.data,
             "curve": run.curve, "eval": {"before": eval_before, "after": eval_after}, "teacher": t_ident,
             "warnings": run.warnings, "teacher_cache": section["teacher_cache"], "settings": settings.to_json(),
             "processes": world}

@@ -16,6 +16,12 @@ def pytest_configure(config):
 FAMILIES = ("llama", "qwen2", "gpt2", "bert")
 
 
+@pytest.fixture(autouse=True)
+def private_sample_cache(tmp_path, monkeypatch):
+    """Model samples (corpus:samples) go to each test's own folder, never the user's cache."""
+    monkeypatch.setenv("ATTNCOMPRESS_CACHE", str(tmp_path / "sample-cache"))
+
+
 QK_SCALE = 15.0  # query/key weights std 0.02 → 0.3: score spreads of a few units instead of about 0.01
 
 

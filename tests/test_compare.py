@@ -153,7 +153,8 @@ def test_different_tokenizers_are_refused(tiny_dirs, calib_file, tmp_path):
 MODEL_KEYS = {"path", "format", "family", "compressed", "parameters", "disk", "runtime_bytes", "kv_bytes_per_token",
               "plan", "method"}
 RATIO_KEYS = {"parameters", "block_matrices", "disk_bytes", "runtime_bytes", "kv_bytes_per_token"}
-PPL_KEYS = {"kind", "texts", "tokenizer", "tokens", "context", "stride", "a", "b", "nll_a", "nll_b", "ratio"}
+PPL_KEYS = {"kind", "texts", "tokenizer", "tokens", "context", "stride", "a", "b", "nll_a", "nll_b", "ratio",
+            "per_text"}
 EMB_KEYS = {"kind", "texts", "tokenizer", "lines", "cosine", "neighbour_agreement", "spearman", "cosines", "per_text"}
 SIDE_KEYS = {"a_ms", "b_ms", "speedup", "a_runs_ms", "b_runs_ms"}
 DECODE_KEYS = SIDE_KEYS | {"cached_tokens", "tokens_per_run", "a_bytes", "b_bytes", "a_limit_ms", "b_limit_ms",

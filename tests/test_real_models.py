@@ -47,3 +47,18 @@ def test_minilm_embeddings_match_transformers():
     cos = torch.nn.functional.cosine_similarity(got, want, dim=1)
     # source: transformers BertModel + mean pooling over the attention mask; the issue's bound 0.9999
     assert cos.min() >= 0.9999, cos.min()
+
+
+def test_smollm2_greedy_generation_matches_transformers(smollm2):
+    import transformers as tf
+    from attncompress.generate import generate_ids
+    ours = load_model(smollm2)
+    prompts = [tokens(ours, p) for p in ("The capital of France is", "def fibonacci(n):", "Once upon a time")]
+    got = generate_ids(ours.model, prompts, max_tokens=24)
+    ref = tf.AutoModelForCausalLM.from_pretrained(str(smollm2.parent), gguf_file=smollm2.name,
+                                                  dtype=torch.float32).eval()
+    ref.generation_config.eos_token_id = None  # run to max_new_tokens, as ours does
+    for p, g in zip(prompts, got):
+        # source: transformers' GenerationMixin.generate(do_sample=False) on its own GGUF loading
+        want = ref.generate(torch.tensor([p]), max_new_tokens=24, do_sample=False, pad_token_id=0)[0, len(p):]
+        assert g == want.tolist(), p

@@ -327,3 +327,68 @@ def test_teacher_with_other_checksums_is_not_taken_for_the_source(tiny, tmp_path
     # named explicitly it is used, and the manifest records that it is not the source
     r = tunelib.tune(moved, [train], tmp_path / "x", teacher=str(fake), **FAST)
     assert r["teacher"]["matches_source"] is False
+
+
+# ------------------------------------------------------------------------------- held-out slice, best step
+
+def test_heldout_indices_are_evenly_spaced_and_never_all():
+    assert tunelib.heldout_indices(10, 0.2).tolist() == [2, 7]
+    assert tunelib.heldout_indices(10, 0).tolist() == [] and tunelib.heldout_indices(1, 0.5).tolist() == []
+    assert len(tunelib.heldout_indices(3, 0.9)) == 2  # at most n − 1: something is left to train on
+    # repeats: every block visited steps·batch/n times when that is whole (block_order is one permutation per epoch)
+    owner = torch.tensor([0] * 4 + [1] * 4)
+    assert tunelib.repeats(owner, 2, seed=0, steps=2, batch=8) == [2.0, 2.0]
+
+
+def test_the_written_weights_are_those_of_the_best_heldout_step(tiny, tmp_path, monkeypatch):
+    _, cmp, train, _ = tiny
+    # a learning rate far too high and held constant (no decay to rescue it): the held-out loss falls, then
+    # rises as the run overshoots
+    monkeypatch.setattr(tunelib, "lr_multiplier", lambda step, *a, **kw: 1.0)
+    opts = dict(FAST, steps=16, lr=10.0, teacher="none", heldout=0.2, eval_every=1, patience=100)
+    whole = tunelib.tune(cmp, [train], tmp_path / "whole", **opts)
+    h = whole["heldout"]
+    losses = [c["loss"] for c in h["curve"]]
+    best = h["best_step"]
+    assert h["curve"][0]["step"] == 0 and len(losses) == 17 and losses[best] == min(losses)
+    assert 0 < best < 16 and losses[-1] > losses[best], str([round(x, 4) for x in losses])  # it did rise after the best step
+    # the independent run: the same tune interrupted right after the best step keeps that step's tensors
+    real = tunelib.lr_multiplier
+
+    def ctrl_c_after_best(step, *a, **kw):
+        if step == best:
+            raise KeyboardInterrupt
+        return real(step, *a, **kw)
+    monkeypatch.setattr(tunelib, "lr_multiplier", ctrl_c_after_best)
+    with pytest.raises(tunelib.TuneInterrupted):
+        tunelib.tune(cmp, [train], tmp_path / "part", **dict(opts, save_every=best))
+    state = torch.load(tunelib.checkpoint_path(tmp_path / "part"), weights_only=True)
+    assert state["step"] == best
+    written = _weights(tmp_path / "whole")
+    for name, t in state["params"].items():
+        t = t.T if name.endswith(".b") else t  # stored transposed while training
+        assert torch.equal(written[name], t.contiguous()), name
+
+
+def test_a_rising_heldout_loss_stops_the_run_early(tiny, tmp_path):
+    _, cmp, train, _ = tiny
+    r = tunelib.tune(cmp, [train], tmp_path / "t", **dict(FAST, steps=40, lr=0.05, teacher="none", heldout=0.2,
+                                                             eval_every=2, patience=2))
+    h = r["heldout"]
+    assert h["stopped_early_at"] is not None and r["steps_run"] == h["stopped_early_at"] < 40
+    after_best = [c["loss"] for c in h["curve"] if c["step"] > h["best_step"]]
+    assert len(after_best) == 2 and min(after_best) >= h["best_loss"]  # two evaluations without a new best
+
+
+def test_repeats_and_the_warning_when_the_run_reads_more_than_the_text(tiny, tmp_path):
+    _, cmp, train, held = tiny
+    r = tunelib.tune(cmp, [train, held], tmp_path / "t", **dict(FAST, steps=30, teacher="none"))
+    files = r["data"]["files"]
+    n_train = sum(f["blocks"] for f in files)
+    assert n_train == r["data"]["blocks"] and r["data"]["heldout_blocks"] >= 2
+    # 30 steps × 4 blocks over the training blocks: the mean visits over all blocks is exactly that ratio
+    mean = sum(f["repeats"] * f["blocks"] for f in files) / n_train
+    assert mean == pytest.approx(30 * 4 / n_train, rel=1e-3)
+    assert any("repeated" in w and "train.txt" in w for w in r["warnings"])
+    r = tunelib.tune(cmp, [train], tmp_path / "u", **dict(FAST, steps=2, teacher="none"))
+    assert not r["warnings"]
