@@ -9,6 +9,7 @@ which bounds a decode step from below: every weight is read once per token.
 from __future__ import annotations
 
 import math
+import os
 import statistics
 from contextlib import contextmanager
 from dataclasses import dataclass
@@ -17,6 +18,7 @@ import torch
 import torch.nn.functional as F
 
 from . import evaluate
+from . import threads as threadlib
 from .errors import CompressError
 from .loading import Loaded, load_weights
 from .model import KVCache, Transformer, build
@@ -292,7 +294,8 @@ def speed(a: _Model, b: _Model, runs: int = RUNS, threads: int | None = None,
     """The speed section of the comparison (see `compare` for the keys)."""
     ma, mb = a.loaded.model, b.loaded.model
     with _threads(threads) as n_threads:
-        out = {"threads": n_threads, "runs": runs}
+        # how the threads were chosen, and the load the timings ran under
+        out = {"threads": n_threads, "runs": runs, "thread_choice": threadlib.current().to_json()}
         if ma.is_decoder:
             buf = torch.ones(256 << 18) if bandwidth else None  # 256 MB of float32, far above any cache
             probe = (lambda: measure_bandwidth(runs=3, buffer=buf)) if bandwidth else None
@@ -323,6 +326,7 @@ def speed(a: _Model, b: _Model, runs: int = RUNS, threads: int | None = None,
                 mask = torch.ones_like(ids)
             t = time_encoders([ma, mb], ids, mask, runs=runs)
             out["batch"] = {"sentences": ids.shape[0], "tokens": int(mask.sum()), **_side(t["batch"])}
+        out["load_average_after"] = round(os.getloadavg()[0], 2)
     return out
 
 
@@ -363,7 +367,8 @@ def compare(a: str, b: str, texts: list[str] | None = None, lines: list[str] | N
           "lines"}], "tokenizer" (how the token ids were checked), "tokens", "context", "stride", "a", "b"
           (perplexities), "nll_a", "nll_b" (nats per token), "ratio" (b / a)}; encoders: {"kind": "embedding",
           "texts", "tokenizer", "lines", "cosine": {"mean", "p5", "min"}, "neighbour_agreement"}.
-        - "speed": null when skipped; else {"threads", "runs"} and for decoders
+        - "speed": null when skipped; else {"threads", "runs", "thread_choice": {"threads", "wait_policy",
+          "reason", "load_average", "cores"} (see `threads.decide`), "load_average_after"} and for decoders
           "prompt": {"tokens", "a_ms", "b_ms", "speedup", "a_runs_ms", "b_runs_ms"} (prefill of 1×tokens,
           last-position logits), "decode": {"cached_tokens", "tokens_per_run", "a_ms", "b_ms" (per token),
           "speedup", "a_runs_ms", "b_runs_ms", "a_bytes", "b_bytes" (bytes read per step), "a_limit_ms",

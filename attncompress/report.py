@@ -15,7 +15,8 @@ def inspect_text(r: dict) -> str:
              "parameters: " + ", ".join(f"{k} {_m(v)}" for k, v in r["parameters"].items()),
              f"block matrices: {_m(r['block_matrix_parameters'])}"
              + (f"; KV cache {r['kv_bytes_per_token']:,} bytes/token (float32)" if r["kv_bytes_per_token"] else ""),
-             "dtypes: " + ", ".join(f"{k} x{v}" for k, v in r["dtypes"].items()), ""]
+             "dtypes: " + ", ".join(f"{k} x{v}" for k, v in r["dtypes"].items())
+             + (f" (format {r['storage']}; runs in float32)" if r.get("storage") else ""), ""]
     lines.append(f"{'layer':>5}  {'QK (heads x width)':<22} {'VO (groups x width)':<22} feed-forward")
     for L in r["layers"]:
         qk, vo = L["qk"], L["vo"]
@@ -136,13 +137,16 @@ def _speed_note(sp: dict | None) -> str:
     if not sp:
         return "speed not measured"
     bw = f"streaming read {sp['bandwidth_gb_s']:.1f} GB/s; " if "bandwidth_gb_s" in sp else ""
-    note = (f"speed: same process, A and B interleaved, median of {sp['runs']} runs, {sp['threads']} threads; "
+    tc = sp.get("thread_choice") or {}
+    how = (f"{sp['threads']} threads, {tc['wait_policy']} waiting ({tc['reason']})" if tc
+           else f"{sp['threads']} threads")
+    note = (f"speed: same process, A and B interleaved, median of {sp['runs']} runs, {how}; "
             f"{bw}speedup = time A / time B")
     series = [sp[k][f"{side}_runs_ms"] for k in ("prompt", "decode", "batch") if k in sp for side in "ab"]
     spread = max((max(r) / min(r) for r in series if r), default=1.0)
     if spread > 1.3:
         note += (f"\nnoisy: runs of one figure differ by up to {spread:.1f}x (a loaded machine?); try --threads 1, "
-                 "more --runs, or OMP_WAIT_POLICY=PASSIVE when other jobs share the cores")
+                 "more --runs, or --threads N:passive when other jobs share the cores")
     return note
 
 

@@ -173,7 +173,8 @@ def test_json_has_the_documented_keys(tiny_dirs, compressed, calib_file, lines_f
     assert r["a"]["plan"] is None and set(r["b"]["plan"]) == {"strategy", "keep", "layers", "full"}
     assert set(r["quality"]) == PPL_KEYS
     sp = r["speed"]
-    assert set(sp) == {"threads", "runs", "prompt", "decode", "bandwidth_gb_s"}
+    assert set(sp) == {"threads", "runs", "thread_choice", "load_average_after", "prompt", "decode", "bandwidth_gb_s"}
+    assert set(sp["thread_choice"]) == {"threads", "wait_policy", "reason", "load_average", "cores"}
     assert set(sp["prompt"]) == SIDE_KEYS | {"tokens"} and set(sp["decode"]) == DECODE_KEYS
     assert len(sp["decode"]["a_runs_ms"]) == 2 and sp["prompt"]["tokens"] == 256
     # definition: speedup = time of A / time of B
@@ -186,7 +187,7 @@ def test_json_has_the_documented_keys(tiny_dirs, compressed, calib_file, lines_f
     assert res.exit_code == 0, res.output
     r = json.loads(res.output)
     assert set(r["quality"]) == EMB_KEYS and set(r["quality"]["cosine"]) == {"mean", "p5", "min"}
-    assert set(r["speed"]) == {"threads", "runs", "batch"}
+    assert set(r["speed"]) == {"threads", "runs", "thread_choice", "load_average_after", "batch"}
     assert set(r["speed"]["batch"]) == SIDE_KEYS | {"sentences", "tokens"} and r["speed"]["batch"]["sentences"] == 32
     assert r["a"]["kv_bytes_per_token"] is None and r["ratios"]["kv_bytes_per_token"] is None
 
