@@ -15,6 +15,7 @@ from .errors import CompressError
 from .factorize import DEFAULT_DAMPING
 from .io import storage
 from .loading import load_model, load_weights, tokens
+from .model import fuse
 from .models import resolve
 from .strategies import DEFAULT_STRATEGY
 from .texts import read_lines, read_texts
@@ -63,6 +64,7 @@ def perplexity(path: str, texts: list[str], context: int = 512, stride: int | No
     """Perplexity of a decoder over the concatenated token stream of the text files."""
     text, described = read_texts(texts)
     loaded = load_model(resolve(path))
+    fuse(loaded.model)  # inference only: one product per shared input
     if not loaded.model.is_decoder:
         raise CompressError(f"{loaded.path}: perplexity needs a decoder; this {loaded.shape.family} model is an encoder")
     ids = tokens(loaded, text)
@@ -76,6 +78,7 @@ def embed(path: str, text: str, batch: int = 32) -> dict:
     """Mean-pooled sentence embeddings of an encoder, one sentence per line."""
     lines = read_lines(text)
     loaded = load_model(resolve(path))
+    fuse(loaded.model)
     if loaded.model.is_decoder:
         raise CompressError(f"{loaded.path}: embed needs an encoder; this {loaded.shape.family} model is a decoder")
     if loaded.tokenizer is None:

@@ -21,7 +21,7 @@ from . import evaluate
 from . import threads as threadlib
 from .errors import CompressError
 from .loading import Loaded, load_weights
-from .model import KVCache, Transformer, build
+from .model import KVCache, Transformer, build, fuse
 from .models import resolve
 from .progress import seconds
 from .texts import read_lines, read_texts
@@ -44,7 +44,7 @@ class _Model:
 def _open(path: str, label: str) -> _Model:
     """Load a model the way `load_model` does, counting from the canonical weights before they are dropped."""
     shape, weights, source, walk, manifest = load_weights(resolve(path))
-    model = build(shape, weights)
+    model = fuse(build(shape, weights))  # the inference path: one product per shared input
     model.eval()
     loaded = Loaded(model, shape, source.tokenizer(), source, walk, manifest)
     return _Model(loaded, model_facts(loaded, weights), label)
