@@ -207,7 +207,7 @@ def layer_spectra(shape: ModelShape, w: dict[str, torch.Tensor], layer: int, roo
         svs.append(fz.vo_group_singular_values(v_g, heads, l_attn))
     vals = torch.stack(svs)  # (g, hd)
     out["vo"] = {"values": vals, "gains": vals.pow(2).sum(0)}
-    for kind in (("gate", "up", "down") if shape.gated else ("up", "down")):
+    for kind in shape.ff_kinds:
         root, out_w = roots.ff_sides(kind)
         target = ff_target(w[p + f"ff.{kind}.weight"], out_w)
         s = fz.singular_values(target, None if root is None else root[0])

@@ -16,7 +16,7 @@ from .factorize import DEFAULT_DAMPING
 from .io import storage
 from .loading import load_model, load_weights, tokens
 from .model import fuse
-from .models import resolve
+from .builtin import resolve
 from .strategies import DEFAULT_STRATEGY
 from .texts import read_lines, read_texts
 from .tune import DEFAULT_DECAY, DEFAULT_DECAY_COEF, tune  # noqa: F401  (the API's tune)
@@ -42,7 +42,7 @@ def inspect(path: str, heads: int | None = None, kv_heads: int | None = None) ->
             "vo": {"groups": shape.n_kv_heads, "heads_per_group": shape.q_per_kv, "width": v.shape[0] // shape.n_kv_heads},
             "ff": {},
         }
-        for m in (("gate", "up", "down") if shape.gated else ("up", "down")):
+        for m in shape.ff_kinds:
             if p + f"ff.{m}.a" in weights:
                 a, b = weights[p + f"ff.{m}.a"], weights[p + f"ff.{m}.b"]
                 entry["ff"][m] = {"shape": [a.shape[0], b.shape[0]], "rank": a.shape[1]}
@@ -55,7 +55,7 @@ def inspect(path: str, heads: int | None = None, kv_heads: int | None = None) ->
         "parameters": evaluate.param_groups(weights), "block_matrix_parameters": evaluate.block_matrix_params(weights),
         "dtypes": source.dtypes(), "storage": manifest.get("dtype", "float32") if manifest else None,
         "layers": layers, "unused": walk.unused if walk else [],
-        "kv_bytes_per_token": evaluate.kv_bytes_per_token(shape, weights) if shape.family != "bert" else None,
+        "kv_bytes_per_token": evaluate.kv_bytes_per_token(shape, weights) if shape.is_decoder else None,
     }
 
 

@@ -44,6 +44,8 @@ class Adapter:
     transposed: frozenset[str] = frozenset()  # canonical names stored (d_in, d_out): GPT-2 Conv1D
     fused: dict[str, tuple[str, int]] = field(default_factory=dict)  # canonical → (source template, part of 3)
     signature: str = ""  # a per-layer source name that identifies the family in a bare .safetensors file
+    # biases and an untied output head are read off the tensors present (the config does not say: llama, qwen2)
+    extras_from_tensors: bool = False
 
 
 def _get(cfg: dict, key: str, path: str, default=None):
@@ -136,7 +138,7 @@ LLAMA = Adapter(
     globals_={"embed.tokens": "model.embed_tokens.weight", "final_norm.weight": "model.norm.weight",
               "lm_head.weight": "lm_head.weight"},
     per_layer=_LLAMA_LAYER, optional=_BIASES | {"lm_head.weight"}, prefixes=("",),
-    shape_from_config=_llama_shape, signature="model.layers.0.self_attn.q_proj.weight")
+    shape_from_config=_llama_shape, signature="model.layers.0.self_attn.q_proj.weight", extras_from_tensors=True)
 
 GPT2 = Adapter(
     family="gpt2", model_types=("gpt2",),
@@ -213,7 +215,7 @@ def canonical_names(shape: ModelShape) -> list[str]:
         out.append("embed.positions")
     if shape.type_vocab_size:
         out.append("embed.types")
-    if shape.family == "bert":
+    if shape.embed_norm:
         out += ["embed.norm.weight", "embed.norm.bias"]
     for i in range(shape.n_layers):
         p = f"layers.{i}."
@@ -227,16 +229,16 @@ def canonical_names(shape: ModelShape) -> list[str]:
         out.append(p + "ff_norm.weight")
         if shape.norm == "layer":
             out.append(p + "ff_norm.bias")
-        for m in (("gate", "up", "down") if shape.gated else ("up", "down")):
+        for m in shape.ff_kinds:
             out.append(p + f"ff.{m}.weight")
             if shape.mlp_bias:
                 out.append(p + f"ff.{m}.bias")
-    if shape.family != "bert":
+    if shape.final_norm:
         out.append("final_norm.weight")
         if shape.norm == "layer":
             out.append("final_norm.bias")
-        if not shape.tied_embeddings:
-            out.append("lm_head.weight")
+    if shape.is_decoder and not shape.tied_embeddings:
+        out.append("lm_head.weight")
     return out
 
 
@@ -302,7 +304,8 @@ def walk(source, n_heads: int | None = None, n_kv_heads: int | None = None) -> W
         split = (adapter.fused[leaf][1], 3) if leaf in adapter.fused else None
         refs[name] = Ref(src, transposed=leaf in adapter.transposed, split=split)
     # Optional tensors that exist change the shape (biases, an untied output head).
-    shape = _shape_with_extras(shape, refs)
+    if adapter.extras_from_tensors:
+        shape = _shape_with_extras(shape, refs)
     for name, ref in refs.items():
         got = tuple(source.shape(ref.source))
         if ref.transposed:
@@ -330,9 +333,8 @@ def _optional_extras(adapter: Adapter, shape: ModelShape) -> list[str]:
 
 
 def _shape_with_extras(shape: ModelShape, refs: dict[str, Ref]) -> ModelShape:
+    """The shape with the optional tensors that are present: biases, an untied output head."""
     import dataclasses
-    if shape.family != "llama":
-        return shape
     # A tied model ignores any stored lm_head.weight (it is then reported unused), as the reference does.
     return dataclasses.replace(shape, qkv_bias="layers.0.attn.q.bias" in refs, o_bias="layers.0.attn.o.bias" in refs,
                                mlp_bias="layers.0.ff.up.bias" in refs,

@@ -22,7 +22,7 @@ from . import threads as threadlib
 from .errors import CompressError
 from .loading import Loaded, load_weights
 from .model import KVCache, Transformer, build, fuse
-from .models import resolve
+from .builtin import resolve
 from .progress import seconds
 from .texts import read_lines, read_texts
 
@@ -80,9 +80,8 @@ def model_facts(ld: Loaded, weights: dict) -> dict:
 
 def _full_ranks(shape) -> dict:
     """The most units each kind of matrix can keep: rotary pairs or rank for qk, rank for vo and feed-forward."""
-    from .plan import ff_kinds
     return {"qk": shape.n_pairs if shape.rotary else shape.head_dim, "vo": shape.head_dim,
-            **{k: min(shape.d_model, shape.d_ff) for k in ff_kinds(shape)}}
+            **{k: min(shape.d_model, shape.d_ff) for k in shape.ff_kinds}}
 
 
 def _ratio(b, a):

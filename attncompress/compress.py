@@ -22,7 +22,7 @@ from .io.read import open_source
 from .io import storage
 from .io.write import DEFAULT_SHARD_SIZE
 from .model import build, build_block
-from .models import resolve
+from .builtin import resolve
 from .progress import Progress, Timer
 from .texts import read_texts, token_blocks
 from .errors import CompressError

@@ -331,7 +331,7 @@ class Transformer(nn.Module):
         super().__init__()
         self.shape = shape
         # a tied table is also the output head: lay it out for one-row logits (embedding rows stay cheap to gather)
-        self.tokens = nn.Parameter(gemv_layout(tokens) if lm_head is None and shape.family != "bert" else tokens)  # (vocab, d)
+        self.tokens = nn.Parameter(gemv_layout(tokens) if lm_head is None and shape.is_decoder else tokens)  # (vocab, d)
         self.positions = nn.Parameter(positions) if positions is not None else None
         self.types = nn.Parameter(types) if types is not None else None
         self.embed_norm, self.final_norm = embed_norm, final_norm
@@ -345,7 +345,7 @@ class Transformer(nn.Module):
 
     @property
     def is_decoder(self) -> bool:
-        return self.shape.family != "bert"
+        return self.shape.is_decoder
 
     def hidden(self, ids, *, attention_mask=None, token_types=None, cache: KVCache | None = None, start: int = 0):
         """Final hidden states (b, s, d) for token ids (b, s)."""

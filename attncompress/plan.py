@@ -44,7 +44,7 @@ DEFAULT_BYTES_PER_ELEMENT = 4  # float32 key/value cache
 
 def ff_kinds(shape: ModelShape) -> tuple[str, ...]:
     """The feed-forward kinds of this model: ("gate", "up", "down") when gated, else ("up", "down")."""
-    return FF_KINDS if shape.gated else FF_KINDS[1:]
+    return shape.ff_kinds
 
 
 def ff_dims(shape: ModelShape, kind: str) -> tuple[int, int]:

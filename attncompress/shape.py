@@ -55,6 +55,26 @@ class ModelShape:
         return self.rope_theta is not None
 
     @property
+    def is_decoder(self) -> bool:
+        """A causal language model with an output head (llama, gpt2); False for an encoder (bert)."""
+        return self.causal
+
+    @property
+    def final_norm(self) -> bool:
+        """A norm after the last block: a pre-norm residual stream is never normalised otherwise."""
+        return self.pre_norm
+
+    @property
+    def embed_norm(self) -> bool:
+        """A norm on the embeddings: post-norm blocks (BERT) do not normalise their first input themselves."""
+        return not self.pre_norm
+
+    @property
+    def ff_kinds(self) -> tuple[str, ...]:
+        """The feed-forward matrices: ("gate", "up", "down") when gated, else ("up", "down")."""
+        return ("gate", "up", "down") if self.gated else ("up", "down")
+
+    @property
     def n_pairs(self) -> int:
         """Rotary frequency pairs per head (0 without rotary)."""
         return self.head_dim // 2 if self.rotary else 0

@@ -81,7 +81,7 @@ from .model import LayerNorm, Linear, LowRankLinear, Transformer
 from .io import storage
 from .io.storage import decode
 from .io.write import atomic_dir, check_output, write_model_dir
-from .models import BUILTIN, resolve
+from .builtin import BUILTIN, resolve
 from .progress import Progress, Timer
 from .texts import read_texts, token_blocks
 
@@ -202,7 +202,7 @@ def frobenius_penalty(model: Transformer, dense: bool = False) -> torch.Tensor:
         if all(isinstance(m, Linear) for m in (a.q, a.k, a.v, a.o)):
             total = total + attention_pair_sq_norm(a.q.weight, a.k.weight, a.v.weight, a.o.weight,
                                                    a.n_heads, a.n_kv_heads)
-        for kind in ("gate", "up", "down"):
+        for kind in model.shape.ff_kinds:
             lin = getattr(blk.ff, kind, None)
             if isinstance(lin, LowRankLinear):
                 total = total + pair_sq_norm(lin.a, lin.bt.T)  # a: (d_out, r), b = btᵀ: (d_in, r)
@@ -292,7 +292,7 @@ def factor_params(model: Transformer) -> list[tuple[str, torch.nn.Parameter, boo
         p = f"layers.{i}."
         for m in "qkvo":
             out += _linear_params(p + f"attn.{m}", getattr(blk.attn, m))
-        for kind in ("gate", "up", "down"):
+        for kind in model.shape.ff_kinds:
             lin = getattr(blk.ff, kind, None)
             if isinstance(lin, LowRankLinear):
                 out += _linear_params(p + f"ff.{kind}", lin)
@@ -302,7 +302,7 @@ def factor_params(model: Transformer) -> list[tuple[str, torch.nn.Parameter, boo
 def dense_ff_params(model: Transformer) -> list[tuple[str, torch.nn.Parameter, bool]]:
     """The feed-forward matrices the plan left dense, with canonical names."""
     return [(f"layers.{i}.ff.{kind}.weight", lin.weight, False) for i, blk in enumerate(model.blocks)
-            for kind in ("gate", "up", "down") if isinstance(lin := getattr(blk.ff, kind, None), Linear)]
+            for kind in model.shape.ff_kinds if isinstance(lin := getattr(blk.ff, kind), Linear)]
 
 
 def norm_params(model: Transformer) -> list[tuple[str, torch.nn.Parameter, bool]]:

@@ -20,7 +20,7 @@ from attncompress import analysis, arch, corpora, evaluate, plan as planlib, str
 from attncompress.compress import choose_pairs, factorize_layer, spectra_list
 from attncompress.loading import load_model, tokens
 from attncompress.model import build
-from attncompress.models import builtin
+from attncompress.builtin import builtin
 from attncompress.texts import token_blocks
 
 

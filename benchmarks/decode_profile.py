@@ -26,7 +26,7 @@ from torch.profiler import ProfilerActivity, profile  # noqa: E402
 
 from attncompress.loading import load_model  # noqa: E402
 from attncompress.model import KVCache, fuse  # noqa: E402
-from attncompress.models import resolve  # noqa: E402
+from attncompress.builtin import resolve  # noqa: E402
 
 KINDS = [  # (kind, aten operation names); first match wins
     ("matrix products", ("aten::mm", "aten::addmm", "aten::bmm", "aten::linear", "aten::matmul", "aten::baddbmm")),

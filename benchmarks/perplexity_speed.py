@@ -14,7 +14,7 @@ import torch
 
 from attncompress import corpora, evaluate
 from attncompress.loading import load_model, tokens
-from attncompress.models import builtin
+from attncompress.builtin import builtin
 
 
 class Reference:

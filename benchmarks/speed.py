@@ -30,7 +30,7 @@ from attncompress.compare import decode_bytes, measure_bandwidth, time_decoders 
 from attncompress.compress import compress  # noqa: E402
 from attncompress.evaluate import block_matrix_params  # noqa: E402
 from attncompress.loading import is_compressed, load_model, read_manifest  # noqa: E402
-from attncompress.models import resolve  # noqa: E402
+from attncompress.builtin import resolve  # noqa: E402
 
 SOURCE = "builtin:smollm2-135m"
 # (decode, prompt) speedups the issue asks for, by keep

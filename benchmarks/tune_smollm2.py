@@ -31,7 +31,7 @@ from attncompress import evaluate
 from attncompress.compress import compress
 from attncompress.corpora import write_corpus
 from attncompress.loading import load_model, tokens
-from attncompress.models import resolve
+from attncompress.builtin import resolve
 from attncompress.tune import tune
 
 MODEL = "builtin:smollm2-135m"
