@@ -19,6 +19,7 @@ import torch.nn.functional as F
 
 from . import evaluate
 from . import threads as threadlib
+from .io import storage
 from .errors import CompressError
 from .loading import Loaded, load_weights
 from .model import KVCache, Transformer, build, fuse
@@ -67,7 +68,7 @@ def model_facts(ld: Loaded, weights: dict) -> dict:
         "parameters": {"total": groups["total"], "block_matrices": evaluate.block_matrix_params(weights),
                        "groups": groups},
         "disk": {"bytes": sum(f["bytes"] for f in files), "files": files, "quantised": quantised,
-                 "dtypes": ld.source.dtypes(),
+                 "dtypes": ld.source.dtypes(), "format": _storage_of(ld),
                  "note": ("quantised on disk; dequantised to float32 to run, so disk bytes understate memory"
                           if quantised else None)},
         "runtime_bytes": sum(p.numel() * p.element_size() for p in ld.model.parameters()),
@@ -76,6 +77,15 @@ def model_facts(ld: Loaded, weights: dict) -> dict:
                                             "layers": plan.get("layers"), "full": _full_ranks(ld.shape)},
         "method": (ld.manifest or {}).get("method"),
     }
+
+
+def _storage_of(ld: Loaded) -> str:
+    """The storage format of a model's weights: a compressed directory's `dtype`, else its matrices' float width
+    ("quantised" for a GGUF below 16 bits)."""
+    if ld.manifest is not None:
+        return storage.default_dtype(None, ld.manifest)
+    widths = [ld.source.dtype(n) for n in ld.source.names() if len(ld.source.shape(n)) == 2]
+    return storage.source_width(widths) if all(w in ("F64", "F32", "BF16", "F16") for w in widths) else "quantised"
 
 
 def _full_ranks(shape) -> dict:
@@ -124,6 +134,26 @@ def perplexities(a: _Model, b: _Model, texts: list[str], context: int, stride: i
     return {"kind": "perplexity", "texts": described, "tokenizer": tok_note, "tokens": pa["tokens"],
             "context": pa["context"], "stride": pa["stride"], "a": pa["perplexity"], "b": pb["perplexity"],
             "nll_a": pa["nll"], "nll_b": pb["nll"], "ratio": pb["perplexity"] / pa["perplexity"]}
+
+
+def format_effect(a: _Model, b: _Model, texts: list[str], context: int, stride: int | None,
+                  max_tokens: int | None, quiet: bool) -> dict | None:
+    """What B's storage format alone does to perplexity, measured on A: A in float32 against A rounded to B's
+    format (the rounding `io.storage` applies when writing). None when B is stored in float32."""
+    fmt = b.facts["disk"]["format"]
+    if fmt in ("float32", "quantised"):
+        return None
+    ids, _ = _same_tokens(a, b, read_texts(texts)[0])
+    ids = ids[:max_tokens] if max_tokens else ids
+    ctx = min(context, a.loaded.shape.max_positions or context)
+    shape, weights, *_ = load_weights(resolve(a.loaded.path))
+    stored = storage.encode_all(weights, fmt)
+    rounded = fuse(build(shape, storage.decode(list(stored), stored.__getitem__))).eval()
+    del weights, stored
+    p32 = evaluate.perplexity(a.loaded.model, ids, context=ctx, stride=stride, quiet=quiet, label="perplexity A")
+    pr = evaluate.perplexity(rounded, ids, context=ctx, stride=stride, quiet=quiet, label=f"perplexity A as {fmt}")
+    return {"format": fmt, "measured_on": "a", "float32": p32["perplexity"], "rounded": pr["perplexity"],
+            "ratio": pr["perplexity"] / p32["perplexity"], "tokens": p32["tokens"]}
 
 
 def embedding_agreement(ea: torch.Tensor, eb: torch.Tensor) -> dict:
@@ -312,6 +342,7 @@ def speed(a: _Model, b: _Model, runs: int = RUNS, threads: int | None = None,
                     dec[f"{side}_limit_ms"] = nbytes / bw * 1e3
                     dec[f"{side}_over_limit"] = dec[f"{side}_ms"] / dec[f"{side}_limit_ms"]
                 dec["limit_speedup"] = dec["a_bytes"] / dec["b_bytes"]
+            dec["a_tokens_per_s"], dec["b_tokens_per_s"] = 1e3 / dec["a_ms"], 1e3 / dec["b_ms"]  # generation rate
             out["decode"] = dec
         else:
             tok = a.loaded.tokenizer or b.loaded.tokenizer
@@ -355,7 +386,8 @@ def compare(a: str, b: str, texts: list[str] | None = None, lines: list[str] | N
           other, total}} (floating-point tensors of the canonical weights; block matrices are the q, k, v, o and
           feed-forward weights or factors, no biases),
           "disk": {"bytes" (sum of the weight files), "files": [{"name", "bytes"}], "quantised" (bool: a
-          quantised GGUF), "dtypes": {stored dtype: tensor count}, "note" (str or null)},
+          quantised GGUF), "dtypes": {stored dtype: tensor count}, "format" (float32 / bfloat16 / float16 /
+          int8 / quantised), "note" (str or null)},
           "runtime_bytes" (float32 parameters in memory), "kv_bytes_per_token" (int; null for encoders),
           "plan" ({"strategy", "keep", "layers": [{"layer", "qk", "vo", "ff": {kind: rank|null}, "qk_pairs"}]}
           from the manifest, and "full": {kind: most units} (qk in rotary pairs or rank); null for a model
@@ -366,12 +398,16 @@ def compare(a: str, b: str, texts: list[str] | None = None, lines: list[str] | N
           "lines"}], "tokenizer" (how the token ids were checked), "tokens", "context", "stride", "a", "b"
           (perplexities), "nll_a", "nll_b" (nats per token), "ratio" (b / a)}; encoders: {"kind": "embedding",
           "texts", "tokenizer", "lines", "cosine": {"mean", "p5", "min"}, "neighbour_agreement"}.
+        - "format_effect": null unless decoders with text and B stored narrower than float32; else
+          {"format" (B's), "measured_on": "a", "float32", "rounded" (perplexities of A as it runs and of A
+          rounded to B's format), "ratio" (rounded / float32), "tokens"}.
         - "speed": null when skipped; else {"threads", "runs", "thread_choice": {"threads", "wait_policy",
           "reason", "load_average", "cores"} (see `threads.decide`), "load_average_after"} and for decoders
           "prompt": {"tokens", "a_ms", "b_ms", "speedup", "a_runs_ms", "b_runs_ms"} (prefill of 1×tokens,
           last-position logits), "decode": {"cached_tokens", "tokens_per_run", "a_ms", "b_ms" (per token),
           "speedup", "a_runs_ms", "b_runs_ms", "a_bytes", "b_bytes" (bytes read per step), "a_limit_ms",
-          "b_limit_ms" (bytes / bandwidth), "a_over_limit", "b_over_limit" (time / limit), "limit_speedup"},
+          "b_limit_ms" (bytes / bandwidth), "a_over_limit", "b_over_limit" (time / limit), "limit_speedup",
+          "a_tokens_per_s", "b_tokens_per_s" (generation rate: 1 / decode time)},
           "bandwidth_gb_s" (measured streaming read, 1e9 bytes/s); for encoders "batch": {"sentences", "tokens",
           "a_ms", "b_ms", "speedup", "a_runs_ms", "b_runs_ms"}. Every "speedup" is time of A / time of B.
 
@@ -394,12 +430,13 @@ def compare(a: str, b: str, texts: list[str] | None = None, lines: list[str] | N
                    "disk_bytes": _ratio(fb["disk"]["bytes"], fa["disk"]["bytes"]),
                    "runtime_bytes": _ratio(fb["runtime_bytes"], fa["runtime_bytes"]),
                    "kv_bytes_per_token": _ratio(fb["kv_bytes_per_token"], fa["kv_bytes_per_token"])},
-        "quality": None, "speed": None,
+        "quality": None, "format_effect": None, "speed": None,
     }
     sentences = None
     if ma.loaded.model.is_decoder:
         if texts:
             report["quality"] = perplexities(ma, mb, list(texts), context, stride, max_tokens, quiet)
+            report["format_effect"] = format_effect(ma, mb, list(texts), context, stride, max_tokens, quiet)
     elif texts or lines:
         sentences, described = _lines_of(list(texts) if texts else None, lines)
         report["quality"] = embeddings(ma, mb, sentences, described)

@@ -166,8 +166,12 @@ def rotate(x: torch.Tensor, cos: torch.Tensor, sin: torch.Tensor) -> torch.Tenso
     """`apply_rotary` with tables from `rotary_rows`: x (.., 2p) times cos, plus its halves swapped times signed sin.
 
     Example: one pair, x = [1, 0], angle θ → [cos θ, sin θ] (a rotation by θ).
+    Without autograd, x is overwritten (one temporary instead of three); with it, x is kept.
     """
-    return torch.addcmul(x * cos, x.roll(x.shape[-1] // 2, dims=-1), sin)
+    swapped = x.roll(x.shape[-1] // 2, dims=-1)
+    if torch.is_grad_enabled():
+        return torch.addcmul(x * cos, swapped, sin)
+    return x.mul_(cos).addcmul_(swapped, sin)
 
 
 class KVCache:
@@ -309,6 +313,11 @@ class MLP(nn.Module):
         return self.down(self.act(self.up(x)))
 
 
+def _residual(y: torch.Tensor, x: torch.Tensor) -> torch.Tensor:
+    """y + x, into y (a fresh output of the sub-layer) when no autograd records it."""
+    return y.add_(x) if not torch.is_grad_enabled() else y + x
+
+
 class Block(nn.Module):
     def __init__(self, attn_norm, attn, ff_norm, ff, pre_norm: bool):
         super().__init__()
@@ -316,8 +325,8 @@ class Block(nn.Module):
 
     def forward(self, x, **kw):
         if self.pre_norm:
-            x = x + self.attn(self.attn_norm(x), **kw)
-            return x + self.ff(self.ff_norm(x))
+            x = _residual(self.attn(self.attn_norm(x), **kw), x)
+            return _residual(self.ff(self.ff_norm(x)), x)
         # post-norm (BERT): normalise after each residual sum
         x = self.attn_norm(x + self.attn(x, **kw))
         return self.ff_norm(x + self.ff(x))

@@ -102,7 +102,8 @@ def compare_rows(r: dict) -> list[tuple[str, str, str, str]]:
              _fmt(ratio["parameters"], ".3f")),
             ("block-matrix parameters", _m(a["parameters"]["block_matrices"]), _m(b["parameters"]["block_matrices"]),
              _fmt(ratio["block_matrices"], ".3f"))]
-    disk = [_bytes(m["disk"]["bytes"]) + (" (quantised)" if m["disk"]["quantised"] else "") for m in (a, b)]
+    disk = [_bytes(m["disk"]["bytes"]) + f" ({m['disk'].get('format') or ('quantised' if m['disk']['quantised'] else '?')})"
+            for m in (a, b)]
     rows.append(("bytes on disk", disk[0], disk[1], _fmt(ratio["disk_bytes"], ".3f")))
     rows.append(("bytes in memory (float32)", _bytes(a["runtime_bytes"]), _bytes(b["runtime_bytes"]),
                  _fmt(ratio["runtime_bytes"], ".3f")))
@@ -111,6 +112,10 @@ def compare_rows(r: dict) -> list[tuple[str, str, str, str]]:
                      _fmt(ratio["kv_bytes_per_token"], ".3f")))
     if q and q["kind"] == "perplexity":
         rows.append((f"perplexity ({q['tokens']:,} tokens)", _ppl(q["a"]), _ppl(q["b"]), _ppl(q["ratio"])))
+        fe = r.get("format_effect")
+        if fe:
+            rows.append((f"perplexity of A as {fe['format']} (format alone)", _ppl(fe["float32"]), _ppl(fe["rounded"]),
+                         _ppl(fe["ratio"])))
     elif q:
         c = q["cosine"]
         rows.append((f"cosine A·B per line ({q['lines']} lines)", "", f"mean {c['mean']:.4f} p5 {c['p5']:.4f} "
@@ -122,6 +127,7 @@ def compare_rows(r: dict) -> list[tuple[str, str, str, str]]:
             rows.append((f"prompt 1x{p['tokens']} (ms)", f"{p['a_ms']:.1f}", f"{p['b_ms']:.1f}",
                          f"speedup {p['speedup']:.2f}x"))
             rows.append(("decode (ms/token)", f"{d['a_ms']:.1f}", f"{d['b_ms']:.1f}", f"speedup {d['speedup']:.2f}x"))
+            rows.append(("generation (tokens/s)", f"{d['a_tokens_per_s']:.1f}", f"{d['b_tokens_per_s']:.1f}", ""))
             if "a_limit_ms" in d:
                 rows.append(("  bytes-read limit (ms/token)", f"{d['a_limit_ms']:.1f}", f"{d['b_limit_ms']:.1f}",
                              f"speedup {d['limit_speedup']:.2f}x at best"))

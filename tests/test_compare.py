@@ -157,7 +157,7 @@ PPL_KEYS = {"kind", "texts", "tokenizer", "tokens", "context", "stride", "a", "b
 EMB_KEYS = {"kind", "texts", "tokenizer", "lines", "cosine", "neighbour_agreement"}
 SIDE_KEYS = {"a_ms", "b_ms", "speedup", "a_runs_ms", "b_runs_ms"}
 DECODE_KEYS = SIDE_KEYS | {"cached_tokens", "tokens_per_run", "a_bytes", "b_bytes", "a_limit_ms", "b_limit_ms",
-                           "a_over_limit", "b_over_limit", "limit_speedup"}
+                           "a_over_limit", "b_over_limit", "limit_speedup", "a_tokens_per_s", "b_tokens_per_s"}
 
 
 def test_json_has_the_documented_keys(tiny_dirs, compressed, calib_file, lines_file, tmp_path):
@@ -166,10 +166,11 @@ def test_json_has_the_documented_keys(tiny_dirs, compressed, calib_file, lines_f
                                str(calib_file), "--runs", "2", "--json", "--quiet", "--out", str(tmp_path / "rep")])
     assert res.exit_code == 0, res.output
     r = json.loads(res.output)
-    assert r["schema"] == SCHEMA and set(r) == {"schema", "a", "b", "ratios", "quality", "speed"}
+    assert r["schema"] == SCHEMA and set(r) == {"schema", "a", "b", "ratios", "quality", "format_effect", "speed"}
     assert set(r["a"]) == set(r["b"]) == MODEL_KEYS and set(r["ratios"]) == RATIO_KEYS
     assert set(r["a"]["parameters"]) == {"total", "block_matrices", "groups"}
-    assert set(r["a"]["disk"]) == {"bytes", "files", "quantised", "dtypes", "note"}
+    assert set(r["a"]["disk"]) == {"bytes", "files", "quantised", "dtypes", "format", "note"}
+    assert r["a"]["disk"]["format"] == r["b"]["disk"]["format"] == "float32" and r["format_effect"] is None
     assert r["a"]["plan"] is None and set(r["b"]["plan"]) == {"strategy", "keep", "layers", "full"}
     assert set(r["quality"]) == PPL_KEYS
     sp = r["speed"]

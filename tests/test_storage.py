@@ -136,3 +136,21 @@ def test_tune_trains_in_float32_and_writes_the_chosen_dtype(tiny_dirs, calib_fil
     torch.testing.assert_close(w8["layers.0.attn_norm.weight"], w16["layers.0.attn_norm.weight"], atol=4e-3, rtol=4e-3)
     a8, a16 = w8["layers.0.ff.gate.a"], w16["layers.0.ff.gate.a"]
     assert float((a8 - a16).abs().max()) <= float(a16.abs().max()) / 127
+
+
+def test_compare_reports_disk_format_and_what_the_format_alone_costs(tiny_dirs, calib_file, tmp_path):
+    from attncompress import evaluate
+    from attncompress.compare import compare
+    src = tiny_dirs["llama"][0]
+    out = tmp_path / "q"
+    compress(str(src), str(out), keep=0.6, weights_only=True, quiet=True, dtype="int8")
+    r = compare(str(src), str(out), [str(calib_file)], context=64, max_tokens=600, speed_runs=0)
+    assert r["a"]["disk"]["format"] == "float32" and r["b"]["disk"]["format"] == "int8"
+    fe = r["format_effect"]
+    assert fe["format"] == "int8" and fe["float32"] == pytest.approx(r["quality"]["a"], rel=1e-6)
+    # source: numpy's rounding of the original's weights to int8, run through our runtime
+    shape, w, *_ = load_weights(src)
+    rounded = build(shape, {n: _numpy_round(t, n, "int8") if t.is_floating_point() else t for n, t in w.items()})
+    ids = load_model(src).tokenizer.encode(calib_file.read_text()).ids[:600]
+    want = evaluate.perplexity(rounded, ids, context=64)["perplexity"]
+    assert fe["rounded"] == pytest.approx(want, rel=1e-5) and fe["ratio"] == pytest.approx(want / fe["float32"], rel=1e-5)
