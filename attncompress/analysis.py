@@ -22,6 +22,7 @@ from . import factorize as fz
 from .factorize import Roots
 from .model import Transformer
 from .progress import Progress
+from .sensitivity import LayerSensitivity, output_scale, pair_prices, price, query_drop_price
 from .shape import ModelShape
 
 
@@ -133,23 +134,27 @@ def output_weights(sens: torch.Tensor, down: torch.Tensor) -> torch.Tensor:
 
 
 def layer_roots(stats: LayerStats | None, damping: float, with_bias_row: bool = False,
-                down: torch.Tensor | None = None) -> Roots:
+                down: torch.Tensor | None = None, sens: LayerSensitivity | None = None) -> Roots:
     """Damped Cholesky roots of one layer's Gram matrices (see `factorize.gram_root` for the damping).
 
-    With `down` (the layer's down weight (d, f)) and the stats' sensitivities, also the output weights of
-    gate and up.
+    Output weights: with `sens` (the layer's loss sensitivities) √F of every matrix's output, for the
+    feed-forward matrices and the value-output maps alike (`sensitivity.output_scale`); otherwise, with
+    `down` (the layer's down weight (d, f)) and the stats' sensitivities, the down-reach weights of gate and up.
     """
     if stats is None:
         return Roots(None, None, None, None)
     aug = None
     if with_bias_row:
         aug = fz.gram_root(fz.augmented_gram(stats.attn_gram, stats.attn_sum, stats.tokens), damping)
-    up_out = gate_out = None
-    if down is not None and stats.up_sens is not None:
-        up_out = output_weights(stats.up_sens, down)
-        gate_out = output_weights(stats.gate_sens, down) if stats.gate_sens is not None else None
+    outs: dict[str, torch.Tensor | None] = {}
+    if sens is not None:
+        outs = {f"{k}_out": output_scale(sens, k) for k in ("gate", "up", "down") if k in sens.grad_sq}
+        outs["vo_out"] = output_scale(sens, "o")
+    elif down is not None and stats.up_sens is not None:
+        outs["up_out"] = output_weights(stats.up_sens, down)
+        outs["gate_out"] = output_weights(stats.gate_sens, down) if stats.gate_sens is not None else None
     return Roots(fz.gram_root(stats.attn_gram, damping), aug, fz.gram_root(stats.ff_gram, damping),
-                 fz.gram_root(stats.down_gram, damping), up_out, gate_out)
+                 fz.gram_root(stats.down_gram, damping), **outs)
 
 
 def ff_target(w: torch.Tensor, out_w: torch.Tensor | None) -> torch.Tensor:
@@ -175,44 +180,57 @@ def pair_scores(shape: ModelShape, wq: torch.Tensor, wk: torch.Tensor, root=None
     return (q2.sqrt() * k2.sqrt()[:, None, :]).sum(1)  # (g, p)
 
 
-def layer_spectra(shape: ModelShape, w: dict[str, torch.Tensor], layer: int, roots: Roots) -> dict[str, dict]:
+def layer_spectra(shape: ModelShape, w: dict[str, torch.Tensor], layer: int, roots: Roots,
+                  sens: LayerSensitivity | None = None) -> dict[str, dict]:
     """Per kind, the values that rank the units of one layer.
 
     Returns kind → {"values": (groups, units) descending singular values or pair scores, "gains": (units,)
     energy won by each successive unit summed across heads/groups, and for rotary qk "scores": (g, hd/2)
-    in pair order}.
+    in pair order}. With `sens` (and `roots` made with it) every gain is a price in loss units, the expected
+    rise of the mean calibration loss when that unit is dropped (`sensitivity`), comparable across kinds and
+    layers; rotary "scores" are then the pairs' prices.
     """
     p = f"layers.{layer}."
-    out: dict[str, dict] = {}
     wq, wk, wv, wo = (w[p + f"attn.{m}.weight"] for m in "qkvo")
-    if shape.rotary:
-        sc = pair_scores(shape, wq, wk, roots.attn)  # (g, p)
-        vals = sc.sort(dim=1, descending=True).values
-        # a pair's score is the magnitude of its score term, so its square plays the part of σ²
-        out["qk"] = {"values": vals, "gains": vals.pow(2).sum(0), "scores": sc}
-    else:
-        bq = w.get(p + "attn.q.bias")
-        left, right = roots.qk_sides(bq is not None)
-        svs = []
-        for m in fz.qk_forms(wq, bq, wk, shape.n_heads, shape.n_kv_heads):  # (d[+1], d) each
-            if left is not None:
-                m = left[0].T @ m @ right[0]  # Lᵀ M L: the bilinear form in whitened coordinates
-            svs.append(torch.linalg.svdvals(m)[: shape.head_dim])
-        vals = torch.stack(svs)  # (h, hd)
-        out["qk"] = {"values": vals, "gains": vals.pow(2).sum(0)}
+    out = {"qk": _qk_spectrum(shape, wq, wk, w.get(p + "attn.q.bias"), roots, sens)}
     l_attn = roots.attn[0] if roots.attn is not None else None
-    svs = []
-    for v_g, heads in zip(fz.head_slices(wv, shape.n_kv_heads),
-                          fz.group_output_heads(wo, shape.n_kv_heads, shape.q_per_kv)):
-        svs.append(fz.vo_group_singular_values(v_g, heads, l_attn))
-    vals = torch.stack(svs)  # (g, hd)
-    out["vo"] = {"values": vals, "gains": vals.pow(2).sum(0)}
+    if roots.vo_out is not None:
+        wo = roots.vo_out.double()[:, None] * wo.double()  # diag(D) M: output-weighted value-output maps
+    vals = torch.stack([fz.vo_group_singular_values(v_g, heads, l_attn)
+                        for v_g, heads in zip(fz.head_slices(wv, shape.n_kv_heads),
+                                              fz.group_output_heads(wo, shape.n_kv_heads, shape.q_per_kv))])  # (g, hd)
+    out["vo"] = {"values": vals, "gains": _gains(vals, sens).sum(0)}
     for kind in shape.ff_kinds:
         root, out_w = roots.ff_sides(kind)
-        target = ff_target(w[p + f"ff.{kind}.weight"], out_w)
-        s = fz.singular_values(target, None if root is None else root[0])
-        out[kind] = {"values": s[None], "gains": s.pow(2)}
+        s = fz.singular_values(ff_target(w[p + f"ff.{kind}.weight"], out_w), None if root is None else root[0])
+        out[kind] = {"values": s[None], "gains": _gains(s, sens)}
     return out
+
+
+def _gains(sigma: torch.Tensor, sens: LayerSensitivity | None) -> torch.Tensor:
+    """σ² (energy), or its price in loss units σ̃² / (2m) when the spectrum is output-weighted by `sens`."""
+    return sigma.double().pow(2) if sens is None else price(sigma, sens)
+
+
+def _qk_spectrum(shape: ModelShape, wq, wk, bq, roots: Roots, sens: LayerSensitivity | None) -> dict:
+    """The query-key entry of `layer_spectra`: rotary pair scores (or prices), or per-head form spectra."""
+    if shape.rotary:
+        sc = pair_scores(shape, wq, wk, roots.attn) if sens is None else pair_prices(shape, sens)  # (g, p)
+        vals = sc.sort(dim=1, descending=True).values
+        # a pair's score is the magnitude of its score term, so its square plays the part of σ²; a price is one
+        return {"values": vals, "gains": (vals.pow(2) if sens is None else vals).sum(0), "scores": sc}
+    left, right = roots.qk_sides(bq is not None)
+    svs = []
+    for m in fz.qk_forms(wq, bq, wk, shape.n_heads, shape.n_kv_heads):  # (d[+1], d) each
+        if left is not None:
+            m = left[0].T @ m @ right[0]  # Lᵀ M L: the bilinear form in whitened coordinates
+        svs.append(torch.linalg.svdvals(m)[: shape.head_dim])
+    vals = torch.stack(svs)  # (h, hd)
+    gains = vals.pow(2).sum(0)
+    if sens is not None:
+        # no score gradient here: all the form's energy is priced as zeroing the query output (module note)
+        gains = gains * (query_drop_price(sens) / float(gains.sum().clamp_min(1e-300)))
+    return {"values": vals, "gains": gains}
 
 
 def energy_kept(gains: torch.Tensor) -> list[float]:

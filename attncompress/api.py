@@ -105,15 +105,19 @@ def spectrum(path: str, texts: list[str] | None = None, damping: float = DEFAULT
             "damping": damping, "calibration": an.calibration, "layers": layers}
 
 
-def plan(path: str, out: str | None, keep: float | None = None, strategy: str = DEFAULT_STRATEGY,
+def plan(path: str, out: str | None, keep: float | None = None, strategy: str | None = None,
          texts: list[str] | None = None, damping: float = DEFAULT_DAMPING, quiet: bool = False) -> dict:
-    """Choose ranks under a budget and (with `out`) write the plan JSON for the user to edit."""
+    """Choose ranks under a budget and (with `out`) write the plan JSON for the user to edit.
+
+    `strategy` None: `loss` with calibration text, `uniform` without (`compress.resolve_strategy`).
+    """
+    pipeline.resolve_strategy(strategy, bool(texts))  # refuse before the slow part
     an = pipeline.analyse(path, texts, damping=damping, quiet=quiet)
     p = pipeline.make_rank_plan(an, keep, strategy, None)
     if out:
         from .io.write import write_json_atomic
         write_json_atomic(out, json.loads(p.to_json()))
-    return {"plan": p, "summary": planlib.summary(an.loaded.shape, p)}
+    return {"plan": p, "summary": pipeline.plan_summary(an, p)}
 
 
 
@@ -229,7 +233,7 @@ def expand(path: str, out: str, force: bool = False, dtype: str | None = None) -
 # -------------------------------------------------------------------------------------------- the whole job
 
 def run(path: str, out: str, *, keep: float, texts: list[str], eval_texts: list[str] | None = None,
-        strategy: str = DEFAULT_STRATEGY, steps: int = 60, batch: int = 4, context: int = 128, lr: float = 1e-4,
+        strategy: str | None = None, sequential: bool = True, refit: bool = True, steps: int = 60, batch: int = 4, context: int = 128, lr: float = 1e-4,
         decay: str = DEFAULT_DECAY, decay_coef: float = DEFAULT_DECAY_COEF, seed: int = 0,
         max_eval_tokens: int | None = 4096, force: bool = False, quiet: bool = False) -> dict:
     """Compress, tune and compare in one go; `out` gets `compressed/`, `tuned/` and `report/`.
@@ -247,8 +251,10 @@ def run(path: str, out: str, *, keep: float, texts: list[str], eval_texts: list[
             if not quiet:
                 import sys
                 print(f"[run] {msg}", file=sys.stderr, flush=True)
-        say(f"1/3 compress {path} to keep {keep} of the block matrices ({strategy}, whitened by {len(texts)} text file(s))")
-        c = compress(path, str(tmp / "compressed"), keep=keep, strategy=strategy, texts=texts, quiet=quiet)
+        say(f"1/3 compress {path} to keep {keep} of the block matrices ({strategy or DEFAULT_STRATEGY}, whitened by "
+            f"{len(texts)} text file(s))")
+        c = compress(path, str(tmp / "compressed"), keep=keep, strategy=strategy, texts=texts, quiet=quiet,
+                     sequential=sequential, refit=refit)
         say(f"2/3 tune the factors for {steps} steps ({decay} decay)")
         t = tune(tmp / "compressed", texts, tmp / "tuned", steps=steps, batch=batch, context=context, lr=lr,
                          seed=seed, decay=decay, decay_coef=decay_coef, teacher=str(resolve(path)), quiet=quiet)

@@ -18,7 +18,7 @@ from .errors import CompressError
 from .factorize import DEFAULT_DAMPING
 from .io.storage import DTYPES
 from .io.write import DEFAULT_SHARD_SIZE
-from .strategies import DEFAULT_STRATEGY, STRATEGIES
+from .strategies import DEFAULT_STRATEGY, STRATEGIES, WEIGHTS_ONLY_STRATEGY
 
 
 def _run(fn, *args, **kwargs):
@@ -85,7 +85,8 @@ def inspect(path, as_json, heads, kv_heads):
 @click.argument("path")
 @_texts_opt("UTF-8 text file (repeatable).", required=True)
 @click.option("--context", default=512, show_default=True, help="Tokens per window.")
-@click.option("--stride", type=int, help="Window step; below --context only the new tokens are scored. [default: --context]")
+@click.option("--stride", type=int, help="Tokens scored per window after the first (at most --context - 1); smaller "
+              "gives each prediction more earlier text. [default: --context]")
 @click.option("--max-tokens", type=int, help="Score only the first N tokens of the stream.")
 @_json_opt()
 def perplexity(path, texts, context, stride, max_tokens, as_json):
@@ -131,8 +132,22 @@ def spectrum(path, texts, damping, out, force):
 
 
 _keep_opt = click.option("--keep", type=float, help="Fraction of transformer-block matrix parameters to keep, in (0, 1].")
-_strategy_opt = click.option("--strategy", type=click.Choice(list(STRATEGIES)), default=DEFAULT_STRATEGY,
-                             show_default=True, help="How ranks are shared out under the budget.")
+_strategy_opt = click.option("--strategy", type=click.Choice(list(STRATEGIES)), default=None,
+                             help=f"How ranks are shared out under the budget. [default: {DEFAULT_STRATEGY} with "
+                                  f"--text (cuts priced by the calibration loss), {WEIGHTS_ONLY_STRATEGY} without]")
+_cut_opts = [
+    click.option("--sequential/--no-sequential", default=True, show_default=True,
+                 help="Whiten each layer on the inputs the already-cut layers produce (needs --text)."),
+    click.option("--refit/--no-refit", default=True, show_default=True,
+                 help="After each layer's cut, solve its input factors by least squares to reproduce the dense "
+                      "outputs on the calibration text (with --sequential)."),
+]
+
+
+def _cut_options(fn):
+    for opt in reversed(_cut_opts):
+        fn = opt(fn)
+    return fn
 
 
 @main.command()
@@ -166,10 +181,11 @@ def plan(path, keep, strategy, texts, damping, out, as_json):
               help="Tokens per calibration passage.")
 @click.option("--shard-size", default=DEFAULT_SHARD_SIZE, show_default=True,
               help="Largest safetensors file to write; a bigger model is split into shards with an index.")
+@_cut_options
 @_dtype_opt("the source's float width; 16-bit for a quantised GGUF")
 @_json_opt()
 def compress(path, keep, plan_file, strategy, texts, weights_only, damping, out, force, calib_blocks, calib_context, shard_size,
-             dtype, as_json):
+             sequential, refit, dtype, as_json):
     """Cut ranks under a budget and write a smaller checkpoint."""
     if weights_only:
         click.echo("warning: --weights-only truncates by weights alone; on real small language models this can "
@@ -178,7 +194,7 @@ def compress(path, keep, plan_file, strategy, texts, weights_only, damping, out,
         raise click.UsageError("give --keep or --plan, not both")
     r = _run(api.compress, path, out, keep=keep, plan_file=plan_file, strategy=strategy, texts=list(texts) or None,
              weights_only=weights_only, damping=damping, force=force, n_blocks=calib_blocks, context=calib_context,
-             shard_size=shard_size, dtype=dtype)
+             shard_size=shard_size, sequential=sequential, refit=refit, dtype=dtype)
     from .report import plan_text
     _emit(r, as_json, plan_text(r["plan"]) + f"\nwrote {r['out']} ({r['method']['factors']}) in "
           + ", ".join(f"{k} {v:.1f}s" for k, v in r["seconds"].items()))
@@ -259,7 +275,8 @@ def tune(path, texts, out, steps, batch, context, lr, seed, decay, decay_coef, p
 @click.argument("b")
 @_texts_opt("Text file (repeatable): perplexity of decoders; for encoders one sentence per line.")
 @click.option("--context", default=512, show_default=True, help="Tokens per perplexity window.")
-@click.option("--stride", type=int, help="Perplexity window step. [default: --context]")
+@click.option("--stride", type=int, help="Tokens scored per perplexity window after the first (at most --context - 1). "
+              "[default: --context]")
 @click.option("--max-tokens", type=int, help="Score only the first N tokens of the text.")
 @click.option("--runs", default=5, show_default=True, help="Timed runs per speed figure (median); 0 skips speed.")
 @click.option("--threads", help="auto, N, or N:active / N:passive: threads and OpenMP waiting [default: auto, from the "
@@ -286,8 +303,8 @@ def compare(a, b, texts, context, stride, max_tokens, runs, threads, as_json, ou
 @_texts_opt("Calibration and tuning text (repeatable; a file or corpus:NAME).", required=True)
 @_texts_opt("Held-out text for the comparison (repeatable); default: the calibration text.", name="--eval-text",
             dest="eval_texts")
-@click.option("--strategy", type=click.Choice(list(STRATEGIES)), default=DEFAULT_STRATEGY, show_default=True,
-              help="Rank allocation (uniform measured best on SmolLM2; see README).")
+@_strategy_opt
+@_cut_options
 @click.option("--steps", default=60, show_default=True, help="Tuning steps.")
 @click.option("--decay", type=click.Choice(list(tunelib.DECAYS)), default=tunelib.DEFAULT_DECAY, show_default=True,
               help="Penalty while tuning.")
@@ -295,11 +312,11 @@ def compare(a, b, texts, context, stride, max_tokens, runs, threads, as_json, ou
 @_out_opt("Directory for compressed/, tuned/ and report/.", required=True)
 @_force_opt()
 @_json_opt("Print the comparison as JSON.")
-def run(path, keep, texts, eval_texts, strategy, steps, decay, eval_tokens, out, force, as_json):
+def run(path, keep, texts, eval_texts, strategy, sequential, refit, steps, decay, eval_tokens, out, force, as_json):
     """The whole job: compress with calibration, tune the factors, compare before and after."""
     from .report import compare_text
     r = _run(api.run, path, out, keep=keep, texts=list(texts), eval_texts=list(eval_texts) or None, strategy=strategy,
-             steps=steps, decay=decay, max_eval_tokens=eval_tokens or None, force=force)
+             sequential=sequential, refit=refit, steps=steps, decay=decay, max_eval_tokens=eval_tokens or None, force=force)
     _emit(r["compare"], as_json, compare_text(r["compare"]) + f"\nwrote {out}/compressed, {out}/tuned and {out}/report")
 
 

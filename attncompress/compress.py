@@ -16,17 +16,18 @@ from pathlib import Path
 
 import torch
 
-from . import analysis, arch, factorize as fz, plan as planlib, strategies
+from . import analysis, arch, calibrate, factorize as fz, plan as planlib, strategies
 from .loading import Loaded, is_compressed, tokens
 from .io.read import open_source
 from .io import storage
 from .io.write import DEFAULT_SHARD_SIZE
-from .model import build, build_block
+from .model import build
 from .builtin import resolve
 from .progress import Progress, Timer
 from .texts import read_texts, token_blocks
 from .errors import CompressError
 from .factorize import DEFAULT_DAMPING
+from .sensitivity import LayerSensitivity
 from .shape import ModelShape
 
 FORMAT_VERSION = 1
@@ -146,17 +147,19 @@ def check_plan_ranks(shape: ModelShape, plan: planlib.RankPlan, source: str) -> 
 #
 # Two passes over the layers, each holding one layer's weights at a time (read again from the checkpoint
 # files), so memory is bounded by the largest layer plus the calibration state, never by the model:
-#   1. analyse: the calibration hidden states (n_blocks, context, d) of all blocks go through layer i with
-#      hooks for its input Gram matrices, which whiten its spectra and are saved to a scratch directory;
-#      the outputs are layer i + 1's inputs. Only the spectra stay in memory.
-#   2. plan (needs every spectrum), then factorise each layer with its saved Gram matrices and stream the
-#      result into safetensors shards.
-# The calibration runs CALIB_BATCH blocks per forward pass, the same batches through the same operations
+#   1. analyse: the calibration hidden states (n_blocks, context, d) go forward through layer i with hooks for
+#      its input Gram matrices (saved to a scratch directory, with the layer's input); then the gradient of
+#      the summed calibration loss goes back through the layers in reverse, each read again, with hooks for
+#      its output sensitivities (`calibrate`, `sensitivity`). Each layer's spectra, whitened and priced in
+#      loss units, are all that stays in memory.
+#   2. plan (needs every spectrum), then factorise each layer and stream it into safetensors shards. By
+#      default sequentially: layer i is whitened on the inputs the already-cut layers produce and refit to
+#      reproduce the dense outputs from them (`calibrate.CutPath`).
+# The calibration runs calibrate.BATCH blocks per forward pass, the same batches through the same operations
 # as running the whole model, so the numbers (and the bytes written) are those of the one-shot computation.
 
 CALIB_CONTEXT = 128
-CALIB_BLOCKS = 256
-CALIB_BATCH = 8  # calibration blocks per forward pass
+CALIB_BLOCKS = 64  # 8192 tokens at 128: measured on SmolLM2, see benchmarks/quality_table.py and the README
 
 
 @dataclass
@@ -164,7 +167,8 @@ class Analysed:
     """A source model's walk, calibration description and the spectra of every layer; no weights.
 
     `loaded.model` is None: the layers were run one at a time. `scratch`, when set, holds each layer's
-    calibration Gram matrices (`layer-{i}.safetensors`) for the factorise pass.
+    calibration Gram matrices (`layer-{i}.safetensors`) and sensitivities (`sens-{i}.safetensors`) for the
+    factorise pass; `blocks` are the calibration token blocks (n_blocks, context).
     """
     loaded: Loaded
     spectra: list[dict]
@@ -172,6 +176,8 @@ class Analysed:
     timer: Timer
     damping: float = DEFAULT_DAMPING
     scratch: Path | None = None
+    blocks: torch.Tensor | None = None
+    priced: bool = False  # spectra in loss units (sensitivities measured)
 
 
 def open_model(path, heads: int | None = None, kv_heads: int | None = None) -> Loaded:
@@ -194,6 +200,12 @@ def layer_weights(loaded: Loaded, layer: int) -> dict[str, torch.Tensor]:
     return {n: arch.load_tensor(loaded.source, ref) for n, ref in loaded.walk.refs.items() if n.startswith(p)}
 
 
+def _ends(loaded: Loaded, prefixes: tuple[str, ...]):
+    """The runtime without blocks, from the non-layer tensors with these name prefixes (embedding, or head too)."""
+    w = {n: arch.load_tensor(loaded.source, ref) for n, ref in loaded.walk.refs.items() if n.startswith(prefixes)}
+    return build(loaded.shape, w, blocks=False).requires_grad_(False)
+
+
 def _calibration_blocks(loaded, texts: list[str], context: int, n_blocks: int, option: str = "--calib-context"):
     """Token blocks (n_blocks, context) of the calibration texts, and their description for the manifest."""
     context = min(context, loaded.shape.max_positions or context)  # a learned position table caps the context
@@ -209,50 +221,30 @@ def _calibration_blocks(loaded, texts: list[str], context: int, n_blocks: int, o
                     "tokens": int(blocks.numel()), "tokens_sha256": digest}
 
 
-@torch.no_grad()
-def _embed(loaded: Loaded, blocks: torch.Tensor) -> torch.Tensor:
-    """The first block's input for every calibration block: (n_blocks, s, d) float32."""
-    sh = loaded.shape
-    w = {n: arch.load_tensor(loaded.source, ref) for n, ref in loaded.walk.refs.items() if n.startswith("embed.")}
-    emb = build(sh, w, blocks=False)  # token (and position, type) embedding, embedding norm; no blocks
-    xs = torch.empty(blocks.shape[0], blocks.shape[1], sh.d_model)  # (n_blocks, s, d)
-    for j in range(0, blocks.shape[0], CALIB_BATCH):
-        xs[j:j + CALIB_BATCH] = emb.hidden(blocks[j:j + CALIB_BATCH])
-    return xs
-
-
-@torch.no_grad()
-def _run_block(shape: ModelShape, w: dict[str, torch.Tensor], layer: int, xs: torch.Tensor) -> analysis.LayerStats:
-    """Run block `layer` over the hidden states xs (n_blocks, s, d), in place, and return its statistics.
-
-    The same hooks as `analysis.collect_stats` for the whole model (`analysis.stat_hooks`).
-    """
-    st = analysis.empty_stats(shape)
-    blk = build_block(shape, w, layer)
-    handles = analysis.stat_hooks(blk, st, shape)
-    try:
-        for j in range(0, xs.shape[0], CALIB_BATCH):
-            # the block's output replaces its input: the next layer's input, and all the state carried over
-            xs[j:j + CALIB_BATCH] = blk(xs[j:j + CALIB_BATCH], mask=None, cache=None, layer=layer, start=0)
-    finally:
-        for h in handles:
-            h.remove()
-    return st
-
-
-def _save_stats(scratch: Path, layer: int, st: analysis.LayerStats) -> None:
-    """Put one layer's Gram matrices on disk (float64, exact) until the factorise pass needs them."""
+def _save(scratch: Path, name: str, tensors: dict[str, torch.Tensor]) -> None:
+    """Put one layer's statistics on disk (float64, exact) until the factorise pass needs them."""
     from safetensors.torch import save_file
+    save_file(tensors, str(scratch / f"{name}.safetensors"))
+
+
+def _load(scratch: Path, name: str, remove: bool = False) -> dict[str, torch.Tensor]:
+    """Statistics as `_save` left them (and, with `remove`, give the disk back)."""
+    from safetensors.torch import load_file
+    f = scratch / f"{name}.safetensors"
+    t = load_file(str(f))
+    if remove:
+        f.unlink()
+    return t
+
+
+def _stats_tensors(st: analysis.LayerStats) -> dict[str, torch.Tensor]:
     t = {"attn_gram": st.attn_gram, "attn_sum": st.attn_sum, "ff_gram": st.ff_gram, "down_gram": st.down_gram,
          "tokens": torch.tensor(st.tokens)}
     t.update({k: getattr(st, k) for k in ("up_sens", "gate_sens") if getattr(st, k) is not None})
-    save_file(t, str(scratch / f"layer-{layer}.safetensors"))
+    return t
 
 
-def _load_stats(scratch: Path, layer: int) -> analysis.LayerStats:
-    """One layer's Gram matrices as `_save_stats` left them."""
-    from safetensors.torch import load_file
-    t = load_file(str(scratch / f"layer-{layer}.safetensors"))
+def _stats_from(t: dict[str, torch.Tensor]) -> analysis.LayerStats:
     return analysis.LayerStats(t["attn_gram"], t["attn_sum"], t["ff_gram"], t["down_gram"], int(t["tokens"]),
                                t.get("up_sens"), t.get("gate_sens"))
 
@@ -272,43 +264,72 @@ def _release_large_frees() -> None:
         pass
 
 
-def _first_pass(loaded: Loaded, calib, damping: float, scratch: Path | None, quiet: bool, timer: Timer) -> Analysed:
+def _roots(sh: ModelShape, st, damping: float, w: dict, layer: int, sens=None) -> fz.Roots:
+    """The layer's whitening roots and output weights (see `analysis.layer_roots`)."""
+    return analysis.layer_roots(st, damping, with_bias_row=not sh.rotary and sh.qkv_bias,
+                                down=w[f"layers.{layer}.ff.down.weight"], sens=sens)
+
+
+def _first_pass(loaded: Loaded, calib, damping: float, scratch: Path | None, quiet: bool, timer: Timer,
+                priced: bool = True) -> Analysed:
     """Spectra of every layer, one layer in memory at a time (see the pipeline note above)."""
     _release_large_frees()
     sh = loaded.shape
-    xs = description = None
-    if calib is not None:
-        blocks, description = calib
-        xs = _embed(loaded, blocks)  # (n_blocks, s, d)
-        timer.lap("calibrate")
-        if scratch is not None:
-            scratch.mkdir()
-    spectra = []
-    with Progress(sh.n_layers, "analyse", unit="layer", quiet=quiet) as bar:
+    if calib is None:
+        spectra = []
+        with Progress(sh.n_layers, "analyse", unit="layer", quiet=quiet) as bar:
+            for i in range(sh.n_layers):
+                w = layer_weights(loaded, i)
+                spectra.append(analysis.layer_spectra(sh, w, i, _roots(sh, None, damping, w, i)))
+                bar.update(1)
+        timer.lap("spectra")
+        return Analysed(loaded, spectra, None, timer, damping)
+    blocks, description = calib
+    scratch.mkdir()
+    xs = calibrate.embed(_ends(loaded, ("embed.",)), blocks)  # (n_blocks, s, d)
+    store = calibrate.InputStore(scratch / "inputs") if priced else None
+    spectra: list[dict | None] = [None] * sh.n_layers
+    with Progress(sh.n_layers, "calibrate", unit="layer", quiet=quiet) as bar:
         for i in range(sh.n_layers):
             w = layer_weights(loaded, i)
-            timer.lap("load")
-            st = None
-            if xs is not None:
-                st = _run_block(sh, w, i, xs)
-                if scratch is not None:
-                    _save_stats(scratch, i, st)
-                timer.lap("calibrate")
-            roots = analysis.layer_roots(st, damping, with_bias_row=not sh.rotary and sh.qkv_bias,
-                                         down=w[f"layers.{i}.ff.down.weight"])
-            spectra.append(analysis.layer_spectra(sh, w, i, roots))
-            del w, st, roots  # nothing of this layer but its spectra is kept
+            if store is not None:
+                store.save(i, xs)
+            st = calibrate.forward_layer(sh, w, i, xs)
+            _save(scratch, f"layer-{i}", _stats_tensors(st))
+            if not priced:
+                spectra[i] = analysis.layer_spectra(sh, w, i, _roots(sh, st, damping, w, i))
+            bar.update(1)
+    timer.lap("calibrate")
+    if priced:
+        _backward_pass(loaded, blocks, xs, store, scratch, damping, spectra, quiet, timer)
+    return Analysed(loaded, spectra, description, timer, damping, scratch, blocks, priced)
+
+
+def _backward_pass(loaded: Loaded, blocks, xs, store, scratch: Path, damping: float, spectra: list, quiet: bool,
+                   timer: Timer) -> None:
+    """The loss gradient back through the layers in reverse: sensitivities, then each layer's priced spectra."""
+    sh = loaded.shape
+    grad, terms = calibrate.loss_gradient(_ends(loaded, ("embed.", "final_norm.", "lm_head.")), xs, blocks)
+    with Progress(sh.n_layers, "sensitivity", unit="layer", quiet=quiet) as bar:
+        for i in reversed(range(sh.n_layers)):
+            w = layer_weights(loaded, i)
+            sens = calibrate.backward_layer(sh, w, i, store.pop(i), grad, terms)
+            _save(scratch, f"sens-{i}", sens.to_tensors())
+            timer.lap("sensitivity")
+            roots = _roots(sh, _stats_from(_load(scratch, f"layer-{i}")), damping, w, i, sens)
+            spectra[i] = analysis.layer_spectra(sh, w, i, roots, sens)
             timer.lap("spectra")
             bar.update(1)
-    return Analysed(loaded, spectra, description, timer, damping, scratch if xs is not None else None)
 
 
 def analyse(path: str, texts: list[str] | None = None, *, damping: float = DEFAULT_DAMPING,
             context: int = CALIB_CONTEXT, n_blocks: int = CALIB_BLOCKS, quiet: bool = False, heads=None,
-            kv_heads=None, context_option: str = "--calib-context") -> Analysed:
-    """Open a source model and compute all spectra (whitened by calibration statistics when texts are given).
+            kv_heads=None, context_option: str = "--calib-context", scratch: Path | None = None,
+            priced: bool = True) -> Analysed:
+    """Open a source model and compute all spectra (whitened and priced by calibration when texts are given).
 
-    One layer's weights are in memory at a time; see the pipeline note above.
+    One layer's weights are in memory at a time; see the pipeline note above. The calibration statistics go
+    to `scratch` (a new folder), or to a temporary folder removed before returning.
 
     Raises:
         CompressError: unreadable, corrupt or unsupported checkpoints; bad text files; non-finite weights.
@@ -317,7 +338,13 @@ def analyse(path: str, texts: list[str] | None = None, *, damping: float = DEFAU
     loaded = open_model(path, heads, kv_heads)
     calib = _calibration_blocks(loaded, texts, context, n_blocks, context_option) if texts else None
     timer.lap("load")
-    return _first_pass(loaded, calib, damping, None, quiet, timer)
+    if calib is None or scratch is not None:
+        return _first_pass(loaded, calib, damping, scratch, quiet, timer, priced)
+    import tempfile
+    with tempfile.TemporaryDirectory(prefix="attncompress-") as tmp:
+        an = _first_pass(loaded, calib, damping, Path(tmp) / "calibration", quiet, timer, priced)
+    an.scratch = None  # gone with the folder; the spectra are all a plan needs
+    return an
 
 
 def read_plan_file(plan_file: str, shape: ModelShape) -> planlib.RankPlan:
@@ -348,16 +375,46 @@ def read_plan_file(plan_file: str, shape: ModelShape) -> planlib.RankPlan:
     return p
 
 
-def make_rank_plan(an: Analysed, keep: float | None, strategy: str, plan_file: str | None = None, *,
+def make_rank_plan(an: Analysed, keep: float | None, strategy: str | None, plan_file: str | None = None, *,
                    plan: planlib.RankPlan | None = None) -> planlib.RankPlan:
     """The plan to apply: `plan` or `plan_file` as given, else one made under `keep`; rotary pairs chosen."""
     sh = an.loaded.shape
     if plan is None and plan_file:
         plan = read_plan_file(plan_file, sh)
     if plan is None:
+        strategy = resolve_strategy(strategy, an.priced)
         _check_budget(keep, strategy)
         plan = strategies.make_plan(spectra_list(sh, an.spectra), sh, keep, strategy)
     return choose_pairs(sh, plan, an.spectra)
+
+
+def resolve_strategy(strategy: str | None, priced: bool) -> str:
+    """The strategy to use: as given, else `loss` when the spectra are priced (calibration text), else `uniform`.
+
+    Raises:
+        CompressError: `loss` asked for without prices (no calibration text).
+    """
+    if strategy is None:
+        return strategies.DEFAULT_STRATEGY if priced else strategies.WEIGHTS_ONLY_STRATEGY
+    if strategy == "loss" and not priced:
+        raise CompressError("--strategy loss prices cuts by the calibration loss; give calibration text with "
+                            "--text, or choose another --strategy")
+    return strategy
+
+
+def plan_summary(an: Analysed, p: planlib.RankPlan) -> dict:
+    """`plan.summary` plus, per kind, the block-matrix parameters kept and (priced spectra) the predicted loss rise."""
+    sh = an.loaded.shape
+    out = planlib.summary(sh, p)
+    kept: dict[str, int] = {}
+    for c in planlib.matrix_layout(sh):
+        lr = p.ranks(c.layer)
+        k = lr.qk if c.kind == "qk" else lr.vo if c.kind == "vo" else lr.ff[c.kind]
+        kept[c.kind] = kept.get(c.kind, 0) + (c.dense_params if k is None else min(k * c.unit_params, c.dense_params))
+    out["kept_by_kind"] = kept
+    if an.priced:
+        out["predicted_rise"] = strategies.predicted_rise(spectra_list(sh, an.spectra), p)
+    return out
 
 
 def _check_budget(keep: float | None, strategy: str) -> None:
@@ -365,27 +422,48 @@ def _check_budget(keep: float | None, strategy: str) -> None:
     if keep is None:
         raise CompressError("give --keep F (fraction of block-matrix parameters to keep) or --plan FILE")
     planlib.check_keep(keep)
-    if strategy not in strategies.STRATEGIES:
+    if strategy is not None and strategy not in strategies.STRATEGIES:
         raise CompressError(f"--strategy {strategy!r} is unknown; expected one of {', '.join(strategies.STRATEGIES)}")
 
 
-def _second_pass(an: Analysed, p: planlib.RankPlan, shards, quiet: bool) -> None:
-    """Read each layer again, factorise it at its planned ranks and append it to the shards (the rest as it is)."""
+def _cut_layer(an: Analysed, p: planlib.RankPlan, i: int, path, refit_damping: float) -> dict[str, torch.Tensor]:
+    """Layer i at its planned ranks: whitened on the cut path's inputs and refit when `path` is given."""
+    loaded, sh = an.loaded, an.loaded.shape
+    w = layer_weights(loaded, i)
+    st = sens = cs = None
+    if an.scratch is not None:
+        st = _stats_from(_load(an.scratch, f"layer-{i}", remove=True))
+        if an.priced:
+            sens = LayerSensitivity.from_tensors(_load(an.scratch, f"sens-{i}", remove=True))
+    if path is not None:
+        cs = path.stats(sh, w, i)
+        st = cs.stats  # whitening on the inputs the cut layers produce
+    roots = _roots(sh, st, an.damping, w, i, sens)
+    new = factorize_layer(sh, w, i, p.ranks(i), roots)
+    an.timer.lap("factorise")
+    if path is not None:
+        if path.refit:
+            calibrate.refit_layer(sh, w, new, i, cs, roots, refit_damping)
+            gram, cross = path.down_grams(sh, new, i, cs)
+            calibrate.refit_down(w, new, i, gram, cross, roots, refit_damping)
+        path.advance(sh, new, i)
+        an.timer.lap("refit" if path.refit else "sequential")
+    return new
+
+
+def _second_pass(an: Analysed, p: planlib.RankPlan, shards, quiet: bool, sequential: bool, refit: bool,
+                 refit_damping: float) -> None:
+    """Read each layer again, cut it at its planned ranks and append it to the shards (the rest as it is)."""
     loaded, timer = an.loaded, an.timer
     sh = loaded.shape
+    path = None
+    if sequential and an.blocks is not None:
+        path = calibrate.CutPath(calibrate.embed(_ends(loaded, ("embed.",)), an.blocks), refit)
     with Progress(sh.n_layers, "factorise", unit="layer", quiet=quiet) as bar:
         for i in range(sh.n_layers):
-            w = layer_weights(loaded, i)
-            st = _load_stats(an.scratch, i) if an.scratch is not None else None
-            roots = analysis.layer_roots(st, an.damping, with_bias_row=not sh.rotary and sh.qkv_bias,
-                                         down=w[f"layers.{i}.ff.down.weight"])
-            new = factorize_layer(sh, w, i, p.ranks(i), roots)
-            del w, st, roots
-            timer.lap("factorise")
+            new = _cut_layer(an, p, i, path, refit_damping)
             for name in sorted(new):
                 shards.add(name, new.pop(name))
-            if an.scratch is not None:
-                (an.scratch / f"layer-{i}.safetensors").unlink()  # give the disk back as we go
             timer.lap("write")
             bar.update(1)
     for name, ref in loaded.walk.refs.items():
@@ -395,9 +473,11 @@ def _second_pass(an: Analysed, p: planlib.RankPlan, shards, quiet: bool) -> None
 
 
 def compress(path: str, out: str, *, keep: float | None = None, plan_file: str | None = None,
-             strategy: str = "uniform", texts: list[str] | None = None, weights_only: bool = False,
+             strategy: str | None = None, texts: list[str] | None = None, weights_only: bool = False,
              damping: float = DEFAULT_DAMPING, force: bool = False, quiet: bool = False, context: int = CALIB_CONTEXT,
-             n_blocks: int = CALIB_BLOCKS, shard_size: int | str = DEFAULT_SHARD_SIZE, dtype: str | None = None) -> dict:
+             n_blocks: int = CALIB_BLOCKS, shard_size: int | str = DEFAULT_SHARD_SIZE, sequential: bool = True,
+             refit: bool = True, refit_damping: float = fz.DEFAULT_REFIT_DAMPING, priced: bool = True,
+             dtype: str | None = None) -> dict:
     """Compress a source checkpoint into a directory our runtime (and `expand`) reads.
 
     Streams: one layer's weights are in memory at a time (see the pipeline note above), and the output is
@@ -405,6 +485,11 @@ def compress(path: str, out: str, *, keep: float | None = None, plan_file: str |
     (bytes, or a size such as "2GB"), in format `dtype` (see `io.storage`; None: the source's own float
     width, 16-bit for a quantised GGUF). Everything goes to a temporary sibling of `out` that is renamed at the
     end, so a failure or an interruption leaves nothing behind.
+
+    Args (beyond the command's options): `strategy` None picks `loss` with calibration text, `uniform`
+    without; `sequential` whitens each layer on the cut prefix's outputs, `refit` then solves each layer's
+    input factors by least squares against the dense outputs (damped by `refit_damping`); `priced` measures
+    the loss sensitivities (output weights and prices); all need calibration text.
 
     Returns:
         A report: out, source, method, the plan summary, seconds per stage, the files written.
@@ -418,7 +503,7 @@ def compress(path: str, out: str, *, keep: float | None = None, plan_file: str |
     if texts and weights_only:
         raise CompressError("--text and --weights-only exclude each other")
     if not plan_file:
-        _check_budget(keep, strategy)
+        _check_budget(keep, resolve_strategy(strategy, bool(texts) and priced))
     shard_bytes = parse_size(shard_size)
     if dtype is not None:
         storage.check_dtype(dtype)
@@ -431,29 +516,37 @@ def compress(path: str, out: str, *, keep: float | None = None, plan_file: str |
     sh, src = loaded.shape, loaded.source
     dtype = dtype or storage.default_dtype(src)
     with atomic_dir(out, force) as tmp:
-        an = _first_pass(loaded, calib, damping, tmp / ".calibration", quiet, timer)
+        an = _first_pass(loaded, calib, damping, tmp / ".calibration", quiet, timer, priced)
         p = make_rank_plan(an, keep, strategy, plan=given)
         with ShardWriter(tmp, shard_bytes, dtype=dtype) as shards:
-            _second_pass(an, p, shards, quiet)
+            _second_pass(an, p, shards, quiet, sequential, refit, refit_damping)
             files = shards.close()
         if an.scratch is not None:
             shutil.rmtree(an.scratch)
+        method = _method(an, p, texts, damping, sequential, refit, refit_damping)
         manifest = {
             "format_version": FORMAT_VERSION, "tool": "attncompress", "tool_version": _version(),
             "source": {"path": Path(str(src.path)).name, "format": src.format,
                        "files": [{"name": f.name, "bytes": f.stat().st_size, "sha256": sha256_file(f)}
                                  for f in src.files]},
             "family": sh.family, "model_type": (src.config or {}).get("model_type"),
-            "shape": json.loads(sh.to_json()), "plan": json.loads(p.to_json()),
-            "method": {"factors": "whitened" if texts else "svd", "damping": damping if texts else None,
-                       "spectral_split": "sqrt(S) on both factors"},
+            "shape": json.loads(sh.to_json()), "plan": json.loads(p.to_json()), "method": method,
             "calibration": an.calibration, "dtype": dtype,
         }
         write_model_dir(tmp, None, manifest, loaded.tokenizer, src.config)
         timer.lap("write")
-    summary = planlib.summary(sh, p)
-    return {"out": str(out), "source": str(src.path), "method": manifest["method"], "plan": summary,
+    return {"out": str(out), "source": str(src.path), "method": method, "plan": plan_summary(an, p),
             "seconds": timer.stages, "files": files}
+
+
+def _method(an: Analysed, p, texts, damping: float, sequential: bool, refit: bool, refit_damping: float) -> dict:
+    """The manifest's description of how the cut was made."""
+    calibrated = bool(texts)
+    seq = calibrated and sequential
+    return {"factors": "whitened" if calibrated else "svd", "damping": damping if calibrated else None,
+            "spectral_split": "sqrt(S) on both factors", "allocation": p.strategy,
+            "output_weights": ("loss sensitivity" if an.priced else "down reach") if calibrated else None,
+            "sequential": seq, "refit": seq and refit, "refit_damping": refit_damping if seq and refit else None}
 
 
 def _version() -> str:

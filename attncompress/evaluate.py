@@ -12,25 +12,29 @@ from .progress import Progress
 
 
 def windows(n_tokens: int, context: int, stride: int) -> list[tuple[int, int, int]]:
-    """Sliding windows over a token stream: (begin, end, n_new) with the last n_new targets scored.
+    """Sliding windows over a token stream: (begin, end, n_new), input ids[begin:end], its last n_new targets scored.
 
-    Every token after the first is scored exactly once. Example: n=10, context=4, stride=4 →
-    [(0, 4, 3), (4, 8, 4), (8, 10, 2)]; stride 2 → [(0, 4, 3), (2, 6, 2), (4, 8, 2), (6, 10, 2)].
+    The protocol: every token after the first is scored exactly once, as the prediction from the tokens before
+    it inside one window of at most `context` tokens. The first window ids[0:context] scores tokens
+    1..context-1; each later window scores the next min(stride, context - 1) tokens and holds the `context`
+    tokens ending with the last of them, so each prediction sees at least context - min(stride, context - 1)
+    earlier tokens (with stride = context, consecutive windows overlap by one token).
+    Example: n=10, context=4, stride=4 → [(0, 4, 3), (3, 7, 3), (6, 10, 3)];
+    stride 2 → [(0, 4, 3), (2, 6, 2), (4, 8, 2), (6, 10, 2)].
     """
     if context < 2:
         raise CompressError(f"--context must be at least 2, got {context}")
     if not 1 <= stride <= context:
         raise CompressError(f"--stride must be between 1 and --context ({context}), got {stride}")
-    out, prev_end, begin = [], 0, 0
-    while True:
-        end = min(begin + context, n_tokens)
-        new = end - max(prev_end, begin + 1)
-        if new > 0:
-            out.append((begin, end, new))
-        prev_end = end
-        if end >= n_tokens:
-            return out
-        begin += stride
+    step = min(stride, context - 1)  # a window of `context` tokens predicts at most context - 1 of them
+    first = min(context, n_tokens)
+    out = [(0, first, first - 1)] if first >= 2 else []
+    scored = max(first, 1)  # targets 1..scored-1 are done
+    while scored < n_tokens:
+        end = min(scored + step, n_tokens)
+        out.append((max(0, end - context), end, end - scored))
+        scored = end
+    return out
 
 
 @torch.no_grad()

@@ -31,6 +31,9 @@ from .errors import CompressError
 _EIG_FLOOR = 1e-10
 # Whitening damping relative to the mean diagonal of the Gram (see gram_root); every stage and the CLI use it.
 DEFAULT_DAMPING = 0.01
+# Relative damping of the least-squares refit (as pseudo-inputs shared by both paths, see `refit_factor`):
+# measured on the built-in SmolLM2 at keep 0.8 / 0.5 (0.05 against 1e-3, 1e-2, 0.1; benchmarks/quality_table.py).
+DEFAULT_REFIT_DAMPING = 0.05
 
 
 # ----------------------------------------------------------------------------------------------------------
@@ -560,6 +563,8 @@ class Roots:
     down: tuple[torch.Tensor, torch.Tensor] | None  # (d_ff, d_ff) input of the down matrix
     up_out: torch.Tensor | None = None  # (d_ff,) output-channel weights of the up matrix
     gate_out: torch.Tensor | None = None  # (d_ff,) the same for gate
+    down_out: torch.Tensor | None = None  # (d,) the same for down (from the loss sensitivities only)
+    vo_out: torch.Tensor | None = None  # (d,) output weights of every value-output map (the output projection's)
 
     def qk_sides(self, bias: bool):
         """(left, right) roots of a query-key form: [x; 1] on the query side when the query carries a bias."""
@@ -649,22 +654,28 @@ def vo_factors(wv: torch.Tensor, wo: torch.Tensor, n_kv_heads: int, q_per_kv: in
                ) -> tuple[torch.Tensor, torch.Tensor]:
     """New value and output projections: each key/value group's value-output maps cut jointly to `rank`.
 
+    With `roots.vo_out` = D the truncation is that of diag(D) M L per group (output-weighted, whitened), and
+    the output factor is unweighted after: o = D⁻¹ (weighted o).
+
     Args:
         wv: (g·head_dim, d), wo: (d, h·head_dim) dense projections (fold the value bias first).
         n_kv_heads, q_per_kv: g and the query heads per group.
         rank: kept rank per group.
-        roots: whitening of the layer (the value input is the attention input).
+        roots: whitening of the layer (the value input is the attention input) and its output weights.
 
     Returns:
         (v (g·rank, d), o (d, h·rank)), float64.
     """
     l = roots.attn if roots.attn is not None else (None, None)
+    ow = None if roots.vo_out is None else roots.vo_out.double()[:, None]  # (d, 1)
+    wo = wo.double() if ow is None else ow * wo.double()  # (d, h·head_dim) weighted output rows
     new_v, new_o = [], []
     for v_g, heads in zip(head_slices(wv, n_kv_heads), group_output_heads(wo, n_kv_heads, q_per_kv)):
         v_new, o_new = split_vo_factors(*vo_group_factors(v_g, heads, rank, l[0], l[1]), q_per_kv)
         new_v.append(v_new)
         new_o.extend(o_new)
-    return torch.cat(new_v), torch.cat(new_o, dim=1)
+    o = torch.cat(new_o, dim=1)  # (d, h·rank)
+    return torch.cat(new_v), (o if ow is None else o / ow)
 
 
 def ff_factors(w: torch.Tensor, rank: int, root, out_w: torch.Tensor | None) -> tuple[torch.Tensor, torch.Tensor]:
@@ -685,6 +696,80 @@ def ff_factors(w: torch.Tensor, rank: int, root, out_w: torch.Tensor | None) -> 
         return whitened_factors(w, rank, root[0], root[1])
     # minimise ‖diag(out_w) (W − A Bᵀ) L‖: whitened on the input, weighted on the output side
     return bilinear_factors(w, rank, torch.diag(out_w), torch.diag(1 / out_w), root[0], root[1])
+
+
+# ----------------------------------------------------------------------------------------------------------
+# refit on the inputs the cut prefix produces
+# ----------------------------------------------------------------------------------------------------------
+
+def _pseudo_damped(gram_cut: torch.Tensor, cross: torch.Tensor, damping: float):
+    """G' + λI and C + λI with λ = damping · mean diag(G'): the damping as λ pseudo-inputs seen alike by both paths."""
+    lam = damping * float(torch.diagonal(gram_cut).mean())
+    eye = torch.eye(gram_cut.shape[0], dtype=torch.float64)
+    return gram_cut + lam * eye, cross + lam * eye
+
+
+def refit_factor(w: torch.Tensor, a: torch.Tensor, gram_cut: torch.Tensor, cross: torch.Tensor,
+                 out_w: torch.Tensor | None = None, damping: float = DEFAULT_REFIT_DAMPING) -> torch.Tensor:
+    """The input factor b that best reproduces the dense outputs from the cut inputs, with a fixed.
+
+    Minimises ‖(X' b aᵀ − X wᵀ) D‖_F over b, where X' (n, d_in) are the inputs the already-cut layers produce,
+    X the dense model's inputs at the same positions, and D = diag(out_w) the output weights. The normal
+    equations give b = G'⁻¹ C wᵀ D² a (aᵀ D² a)⁻¹ with G' = X'ᵀX' and C = X'ᵀX. Damping adds λ = damping ·
+    mean diag(G') identical pseudo-inputs to both X' and X (G' + λI, C + λI): it pulls the solution towards
+    the one for uncut inputs, never towards zero.
+
+    Args:
+        w: (d_out, d_in) the dense weight.
+        a: (d_out, r) the output factor, kept.
+        gram_cut: (d_in, d_in) G' = X'ᵀX', float64.
+        cross: (d_in, d_in) C = X'ᵀX, float64.
+        out_w: optional (d_out,) output weights.
+        damping: relative damping (0: the exact least-squares solution, as numpy's lstsq gives).
+    Returns:
+        b: (d_in, r) float64.
+    """
+    w, a = _as_f64(w, "weight", 2), _as_f64(a, "output factor", 2)  # (d_out, d_in), (d_out, r)
+    d2 = torch.ones(w.shape[0], dtype=torch.float64) if out_w is None else out_w.double().pow(2)  # (d_out,)
+    g, c = _pseudo_damped(gram_cut.double(), cross.double(), damping)
+    da = d2[:, None] * a  # (d_out, r) D² a
+    rhs = c @ (w.T @ da)  # (d_in, d_in) @ (d_in, d_out) @ (d_out, r) → (d_in, r)
+    return torch.linalg.solve(g, rhs) @ torch.linalg.inv(a.T @ da)  # (d_in, r) @ (r, r)
+
+
+def refit_dense(w: torch.Tensor, gram_cut: torch.Tensor, cross: torch.Tensor,
+                damping: float = DEFAULT_REFIT_DAMPING) -> torch.Tensor:
+    """The weight w' minimising ‖X' w'ᵀ − X wᵀ‖_F: w'ᵀ = G'⁻¹ C wᵀ (damped as in `refit_factor`). (d_out, d_in) float64."""
+    w = _as_f64(w, "weight", 2)
+    g, c = _pseudo_damped(gram_cut.double(), cross.double(), damping)
+    return torch.linalg.solve(g, c @ w.T).T  # (d_in, d_in) \ (d_in, d_out) → transpose to (d_out, d_in)
+
+
+def refit_values(wv: torch.Tensor, wo: torch.Tensor, o_new: torch.Tensor, n_kv_heads: int, q_per_kv: int,
+                 gram_cut: torch.Tensor, cross: torch.Tensor, out_w: torch.Tensor | None = None,
+                 damping: float = DEFAULT_REFIT_DAMPING) -> torch.Tensor:
+    """New value rows of every group, refit with the new output slices fixed (`refit_factor` per group).
+
+    Each group's target is its dense value-output map M = [Wo_h1; …] Wv_g (`vo_group_product`), its output
+    factor the new slices [o_h1; …] stacked, (rep·d, r), and its output weights `out_w` repeated per head.
+
+    Args:
+        wv: (g·head_dim, d), wo: (d, h·head_dim) dense projections; o_new: (d, h·r) the new output projection.
+        n_kv_heads, q_per_kv: g and the query heads per group.
+        gram_cut, cross: (d, d) G' and C of the attention inputs (the value input).
+        out_w: optional (d,) output weights.
+        damping: relative damping (see `refit_factor`).
+    Returns:
+        (g·r, d) float64 new value rows.
+    """
+    rows = []
+    ow = None if out_w is None else out_w.double().repeat(q_per_kv)  # (rep·d,)
+    for v_g, heads, new in zip(head_slices(wv, n_kv_heads), group_output_heads(wo, n_kv_heads, q_per_kv),
+                               group_output_heads(o_new, n_kv_heads, q_per_kv)):
+        m = vo_group_product(v_g, heads)  # (rep·d, d)
+        a = torch.cat([o.double() for o in new], dim=0)  # (rep·d, r)
+        rows.append(refit_factor(m, a, gram_cut, cross, ow, damping).T)  # (r, d)
+    return torch.cat(rows)
 
 
 # ----------------------------------------------------------------------------------------------------------

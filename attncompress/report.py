@@ -35,6 +35,12 @@ def plan_text(s: dict) -> str:
             f"{_m(s['block_params_dense'])} ({100 * s['kept_fraction']:.1f}%); KV cache {s['kv_bytes_per_token']:,} "
             f"of {s['kv_bytes_per_token_dense']:,} bytes/token")
     keys = [k for k in s["layers"][0] if k != "layer"]
+    if "kept_by_kind" in s:
+        head += "\nkept by kind: " + ", ".join(f"{k} {_m(v)}" for k, v in s["kept_by_kind"].items())
+    if s.get("predicted_rise"):
+        rise = s["predicted_rise"]
+        head += (f"\npredicted rise of the calibration loss: {sum(rise.values()):.4g} nats/token ("
+                 + ", ".join(f"{k} {v:.3g}" for k, v in rise.items()) + ")")
     rows = [f"{'layer':>5} " + " ".join(f"{k:>6}" for k in keys)]
     for L in s["layers"]:
         rows.append(f"{L['layer']:>5} " + " ".join(f"{('dense' if L[k] is None else L[k]):>6}" for k in keys))

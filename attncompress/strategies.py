@@ -20,7 +20,10 @@ from .plan import (
 )
 from .shape import ModelShape
 
-DEFAULT_STRATEGY = "uniform"  # measured best on SmolLM2 (README); compress, plan, run and the CLI use it
+# With calibration text the spectra are priced in loss units and `loss` measured best on SmolLM2 (README,
+# benchmarks/quality_table.py); without it (--weights-only) there are no prices and `uniform` is used.
+DEFAULT_STRATEGY = "loss"
+WEIGHTS_ONLY_STRATEGY = "uniform"
 
 
 def _check_spectra(spectra: Sequence[MatrixSpectrum], shape: ModelShape) -> list[MatrixSpectrum]:
@@ -238,6 +241,35 @@ def plan_global(spectra: Sequence[MatrixSpectrum], shape: ModelShape, keep: floa
     Raises:
         CompressError: bad keep / option, spectra not matching the model, or a budget below the starting plan.
     """
+    return _greedy(spectra, shape, keep, min_fraction, min_units, normalise, bytes_per_element, "global")
+
+
+def plan_loss(spectra: Sequence[MatrixSpectrum], shape: ModelShape, keep: float, *,
+              min_fraction: float = 0.125, bytes_per_element: int = DEFAULT_BYTES_PER_ELEMENT) -> RankPlan:
+    """Drop the units whose predicted loss rise per parameter is lowest, until the budget is met.
+
+    For spectra priced in loss units (`analysis.layer_spectra` with sensitivities): a unit's gain is the rise
+    of the mean calibration loss its removal would cause, the same unit for a rotary pair, a value-output
+    rank and a feed-forward rank of any layer, so the greedy of `plan_global` on raw gains (``normalise``
+    off) is a knapsack by price per parameter: near optimal, since within one matrix the next unit's price
+    only rises (exact when all units cost alike). Every matrix keeps at least ``min_fraction`` of its units.
+
+    Args:
+        spectra: one per matrix of the model, gains in loss units.
+        shape: the model.
+        keep: fraction of block-matrix parameters to keep, in (0, 1].
+        min_fraction: the least each matrix keeps, as a fraction of its maximum units.
+        bytes_per_element: bytes of one cached key/value number.
+    Returns:
+        The plan.
+    Raises:
+        CompressError: as :func:`plan_global`.
+    """
+    return _greedy(spectra, shape, keep, min_fraction, None, False, bytes_per_element, "loss")
+
+
+def _greedy(spectra, shape, keep, min_fraction, min_units, normalise, bytes_per_element, name) -> RankPlan:
+    """The greedy purchase behind `plan_global` and `plan_loss` (see `plan_global`)."""
     _check_option("min_fraction", min_fraction, "fraction")
     if min_units is not None:
         _check_option("min_units", min_units, "int>=1")
@@ -252,7 +284,7 @@ def plan_global(spectra: Sequence[MatrixSpectrum], shape: ModelShape, keep: floa
                          " or lower min_units" if min_units is not None else " or lower min_fraction")
     remaining = _buy_units(spectra, units, cums, hulls, budget - need)
     assert _total_cost(spectra, units) == budget - remaining
-    return _plan_from_units(spectra, units, shape, "global", keep, bytes_per_element)
+    return _plan_from_units(spectra, units, shape, name, keep, bytes_per_element)
 
 
 def _global_start(spectra, min_fraction: float, min_units: int | None, normalise: bool):
@@ -328,8 +360,22 @@ def _buy_units(spectra, units: list[int], cums, hulls, remaining: int) -> int:
     return remaining
 
 
-STRATEGIES: dict[str, Callable[..., RankPlan]] = {"uniform": plan_uniform, "energy": plan_energy,
-                                                  "global": plan_global}
+STRATEGIES: dict[str, Callable[..., RankPlan]] = {"loss": plan_loss, "uniform": plan_uniform,
+                                                  "energy": plan_energy, "global": plan_global}
+
+
+def predicted_rise(spectra: Sequence[MatrixSpectrum], plan: RankPlan) -> dict[str, float]:
+    """Per kind, the summed gains of the units a plan drops: with priced spectra, the predicted loss rise (nats).
+
+    Example: one "up" matrix with gains [3, 2, 1] kept at rank 1 → {"up": 3.0, ...} (2 + 1 dropped), 0 elsewhere.
+    """
+    out: dict[str, float] = {}
+    for s in spectra:
+        lr = plan.ranks(s.layer)
+        k = lr.qk if s.kind == "qk" else lr.vo if s.kind == "vo" else lr.ff[s.kind]
+        dropped = 0.0 if k is None else float(np.sum(np.asarray(s.gains[k:], dtype=np.float64)))
+        out[s.kind] = out.get(s.kind, 0.0) + dropped
+    return out
 
 
 def make_plan(spectra: Sequence[MatrixSpectrum], shape: ModelShape, keep: float, strategy: str = DEFAULT_STRATEGY,

@@ -14,7 +14,6 @@ import subprocess
 import sys
 from pathlib import Path
 
-import numpy as np
 import pytest
 import torch
 from click.testing import CliRunner
@@ -28,6 +27,7 @@ from attncompress.loading import load_model, load_weights
 from attncompress.io.read import open_source
 from attncompress.io.write import ShardWriter, parse_size
 
+BAD = Path(__file__).resolve().parent.parent / "fixtures" / "bad"  # corrupt files made by fixtures/make_fixtures.py
 _PROGRESS = re.compile(r"^[a-z]+: \d+/\d+ \w+ \| ")  # progress lines on stderr (attncompress.progress)
 _STATE_DICT_FILE = "pytorch_model.bin"
 
@@ -41,18 +41,14 @@ def _copy_model(tiny_dirs, tmp_path, family="llama") -> Path:
     return d
 
 
-def _raw_safetensors(path: Path, header: dict, data: bytes, claimed: int | None = None) -> None:
-    """A safetensors file with a hand-written header (and, with `claimed`, a lying header length)."""
-    text = json.dumps(header).encode()
-    path.write_bytes(struct.pack("<Q", len(text) if claimed is None else claimed) + text + data)
-
-
-def _config_only(tiny_dirs, tmp_path) -> Path:
-    """A model directory holding only the tiny llama's config.json and tokenizer."""
+def _config_only(tiny_dirs, tmp_path, weights: str | None = None) -> Path:
+    """A model directory holding only the tiny llama's config.json and tokenizer (and `weights`, a file of BAD)."""
     d = tmp_path / "model"
     d.mkdir()
     for f in ("config.json", "tokenizer.json"):
         shutil.copy(tiny_dirs["llama"][0] / f, d / f)
+    if weights is not None:
+        shutil.copy(BAD / weights, d / "model.safetensors")
     return d
 
 
@@ -88,27 +84,6 @@ class _Payload:
 
     def __reduce__(self):
         return (open, (self.marker, "w"))
-
-
-def _gguf(path: Path, arch_name: str, tensor_type: str = "F32") -> None:
-    """A one-tensor GGUF file with the llama metadata our reader asks for."""
-    import gguf
-    w = gguf.GGUFWriter(str(path), arch_name)
-    w.add_block_count(1)
-    w.add_embedding_length(32)
-    w.add_head_count(4)
-    w.add_feed_forward_length(64)
-    w.add_vocab_size(96)
-    if tensor_type == "F32":
-        w.add_tensor("token_embd.weight", np.zeros((96, 32), np.float32))
-    else:
-        qt = gguf.GGMLQuantizationType[tensor_type]
-        block, size = gguf.GGML_QUANT_SIZES[qt]
-        w.add_tensor("token_embd.weight", np.zeros((96, 32 // block * size), np.uint8), raw_dtype=qt)
-    w.write_header_to_file()
-    w.write_kv_data_to_file()
-    w.write_tensors_to_file()
-    w.close()
 
 
 def _deny_read(c, target: Path) -> None:
@@ -176,8 +151,7 @@ def row_no_weights(c):
 
 
 def row_truncated_length(c):
-    d = _config_only(c.tiny_dirs, c.tmp)
-    (d / "model.safetensors").write_bytes(b"\x10\x00\x00")
+    d = _config_only(c.tiny_dirs, c.tmp, "truncated-length.safetensors")  # 3 bytes
     return c.args(d), (f"{d / 'model.safetensors'}: truncated safetensors file (3 bytes); "
                        "expected an 8-byte header length"), 1
 
@@ -198,48 +172,39 @@ def row_truncated_data(c):
 
 
 def row_header_claims_more(c):
-    d = _config_only(c.tiny_dirs, c.tmp)
+    d = _config_only(c.tiny_dirs, c.tmp, "header-claims-more.safetensors")  # a header length of 10**6
     f = d / "model.safetensors"
-    _raw_safetensors(f, {"w": {"dtype": "F32", "shape": [4], "data_offsets": [0, 16]}}, bytes(16), claimed=10**6)
     size = f.stat().st_size
     return c.args(d), (f"{f}: header claims 1000000 bytes but the file has {size - 8} after the length; "
                        "the file is truncated"), 1
 
 
 def row_header_not_json(c):
-    d = _config_only(c.tiny_dirs, c.tmp)
-    f = d / "model.safetensors"
-    f.write_bytes(struct.pack("<Q", 6) + b"{oops]" + bytes(8))
-    return c.args(d), f"{f}: safetensors header is not valid JSON; the file is corrupt", 1
+    d = _config_only(c.tiny_dirs, c.tmp, "header-not-json.safetensors")  # header b"{oops]"
+    return c.args(d), f"{d / 'model.safetensors'}: safetensors header is not valid JSON; the file is corrupt", 1
 
 
-def _entry(dtype, shape, start, end):
-    return {"dtype": dtype, "shape": shape, "data_offsets": [start, end]}
-
-
-def _header_row(header: dict, data_bytes: int, message: str):
-    """A row whose model directory holds a hand-written safetensors file; `{f}` in the message is that file."""
+def _header_row(fixture: str, message: str):
+    """A row whose model directory holds a corrupt safetensors file of BAD; `{f}` in the message is that file."""
     def row(c):
-        d = _config_only(c.tiny_dirs, c.tmp)
-        f = d / "model.safetensors"
-        _raw_safetensors(f, header, bytes(data_bytes))
-        return c.args(d), message.format(f=f), 1
+        d = _config_only(c.tiny_dirs, c.tmp, fixture)
+        return c.args(d), message.format(f=d / "model.safetensors"), 1
     return row
 
 
+# the headers are written out in fixtures/make_fixtures.py (BAD_HEADERS)
 row_overlapping_offsets = _header_row(
-    {"a": _entry("F32", [4], 0, 16), "b": _entry("F32", [4], 8, 24)}, 24,
-    "{f}: tensors a and b overlap in the data section; the header is corrupt")
+    "overlapping-offsets.safetensors", "{f}: tensors a and b overlap in the data section; the header is corrupt")
 row_offsets_past_the_end = _header_row(
-    {"a": _entry("F32", [4], 0, 16), "b": _entry("F32", [4], 16, 32)}, 16,
+    "offsets-past-the-end.safetensors",
     "{f}: tensor b ends at byte 32 but the data section has 16 bytes; the file is truncated")
 row_offsets_inverted = _header_row(
-    {"a": _entry("F32", [4], 16, 0)}, 16,
+    "offsets-inverted.safetensors",
     "{f}: tensor a has invalid data offsets [16, 0]; expected [start, end] with 0 <= start <= end")
 row_offsets_disagree_with_shape = _header_row(
-    {"a": _entry("F32", [4], 0, 12)}, 12, "{f}: tensor a spans 12 bytes but shape [4] of F32 needs 16")
+    "offsets-disagree-with-shape.safetensors", "{f}: tensor a spans 12 bytes but shape [4] of F32 needs 16")
 row_unsupported_dtype = _header_row(
-    {"a": _entry("F8_E4M3", [4], 0, 4)}, 4,
+    "unsupported-dtype.safetensors",
     "{f}: tensor a has unsupported dtype F8_E4M3; expected one of F64, F32, F16, BF16, I64, I32, I16, I8, U8, BOOL")
 
 
@@ -279,13 +244,13 @@ def row_unknown_family(c):
 
 def row_gguf_unsupported_architecture(c):
     f = c.tmp / "model.gguf"
-    _gguf(f, "mamba")
+    shutil.copy(BAD / "architecture-mamba.gguf", f)
     return c.args(f), f"{f}: GGUF architecture 'mamba' is not supported; expected one of llama", 1
 
 
 def row_gguf_unsupported_quantisation(c):
     f = c.tmp / "model.gguf"
-    _gguf(f, "llama", "Q8_1")  # the gguf package writes Q8_1 blocks but has no dequantiser for them
+    shutil.copy(BAD / "quantisation-q8_1.gguf", f)  # the gguf package writes Q8_1 blocks but cannot dequantise them
     return c.args(f), (f"{f}: tensor token_embd.weight has quantisation type Q8_1, which the installed gguf package "
                        "cannot dequantise; expected a float type or a block quantisation it reads "
                        "(e.g. Q4_0, Q4_K, Q6_K, Q8_0)"), 1
@@ -524,8 +489,9 @@ def _one_shot(d: Path, out: Path, keep: float, texts, n_blocks: int, context: in
 def test_streaming_equals_the_one_shot_computation(tiny_dirs, calib_file, tmp_path, family, whitened):
     d = tiny_dirs[family][0]
     texts = [str(calib_file)] if whitened else None
+    # the method the one-shot path computes: uniform ranks, down-reach output weights, no sequential pass
     pipeline.compress(d, tmp_path / "streamed", keep=0.6, texts=texts, weights_only=not whitened, quiet=True,
-                      n_blocks=12, context=32)
+                      n_blocks=12, context=32, strategy="uniform", priced=False, sequential=False)
     want = _one_shot(d, tmp_path / "one-shot.safetensors", 0.6, texts, 12, 32)
     got = load_file(str(tmp_path / "streamed" / "model.safetensors"))
     assert sorted(got) == sorted(want)

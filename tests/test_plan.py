@@ -398,7 +398,7 @@ def test_make_plan_rejects_unknown_strategy_and_option():
     spectra = decaying_spectra(TINY["llama"])
     with pytest.raises(CompressError) as e:
         make_plan(spectra, TINY["llama"], 0.5, "random")
-    assert str(e.value) == "--strategy: unknown strategy 'random'; expected one of energy, global, uniform"
+    assert str(e.value) == "--strategy: unknown strategy 'random'; expected one of energy, global, loss, uniform"
     with pytest.raises(CompressError) as e:
         make_plan(spectra, TINY["llama"], 0.5, "uniform", normalise=False)
     assert str(e.value) == ("strategy 'uniform' has no option 'normalise'; its options are min_units, "

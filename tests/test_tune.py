@@ -19,7 +19,7 @@ from attncompress.compress import compress
 from attncompress.errors import CompressError
 from attncompress.factorize import product_sq_norm
 from attncompress.loading import load_model
-from conftest import make_reference
+from conftest import make_reference, require
 
 WORDS = ["<unk>"] + [f"w{i}" for i in range(1, 96)]  # 96 ids, the tiny models' vocabulary
 
@@ -258,8 +258,7 @@ def _free_port() -> int:
 def test_two_process_torchrun_matches_one_process(tiny, tmp_path):
     _, cmp, train, _ = tiny
     script = Path(sys.executable).with_name("attncompress")
-    if not script.is_file():
-        pytest.skip("the attncompress console script is not installed beside this python")
+    require(script, "the attncompress console script beside this python", "pip install -e .")
     out = tmp_path / "ddp"
     cmd = [sys.executable, "-m", "torch.distributed.run", "--nproc-per-node", "2", "--master-addr", "127.0.0.1",
            "--master-port", str(_free_port()), str(script), "tune", str(cmp), "--text", str(train), "--out", str(out),
