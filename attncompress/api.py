@@ -233,12 +233,15 @@ def expand(path: str, out: str, force: bool = False, dtype: str | None = None) -
 # -------------------------------------------------------------------------------------------- the whole job
 
 def run(path: str, out: str, *, keep: float, texts: list[str], eval_texts: list[str] | None = None,
-        strategy: str | None = None, sequential: bool = True, refit: bool = True, steps: int = 60, batch: int = 4, context: int = 128, lr: float = 1e-4,
+        strategy: str | None = None, sequential: bool = True, refit: bool = True, steps: int = 60,
+        batch: int | None = None, context: int = 128, lr: float = 1e-4,
         decay: str = DEFAULT_DECAY, decay_coef: float = DEFAULT_DECAY_COEF, seed: int = 0,
         max_eval_tokens: int | None = 4096, force: bool = False, quiet: bool = False) -> dict:
     """Compress, tune and compare in one go; `out` gets `compressed/`, `tuned/` and `report/`.
 
-    The whole directory is written atomically: an error or Ctrl-C leaves nothing behind.
+    For an encoder the compressed model is compared too (quality only), as "compare_compressed", so the
+    report shows what the tune won back. The whole directory is written atomically: an error or Ctrl-C leaves
+    nothing behind.
     """
     from .io.write import atomic_dir, check_output
     from .report import write_compare
@@ -260,5 +263,8 @@ def run(path: str, out: str, *, keep: float, texts: list[str], eval_texts: list[
                          seed=seed, decay=decay, decay_coef=decay_coef, teacher=str(resolve(path)), quiet=quiet)
         say("3/3 compare the original with the tuned model")
         r = comparelib.compare(path, str(tmp / "tuned"), eval_texts or texts, max_tokens=max_eval_tokens, quiet=quiet)
+        rc = None
+        if r["quality"] and r["quality"]["kind"] == "embedding":
+            rc = comparelib.compare(path, str(tmp / "compressed"), eval_texts or texts, speed_runs=0, quiet=quiet)
         write_compare(r, str(tmp / "report"), False)
-    return {"out": str(out), "compress": c, "tune": t, "compare": r}
+    return {"out": str(out), "compress": c, "tune": t, "compare": r, "compare_compressed": rc}

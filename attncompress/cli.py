@@ -217,8 +217,9 @@ def expand(path, out, force, dtype):
 @_texts_opt("Training text file (repeatable).", required=True)
 @_out_opt("Tuned directory to write.", required=True)
 @click.option("--steps", default=100, show_default=True, help="Optimiser steps.")
-@click.option("--batch", default=4, show_default=True, help="Blocks per step, over all processes.")
-@click.option("--context", default=128, show_default=True, help="Tokens per block.")
+@click.option("--batch", type=int, help="Blocks (encoders: sentences) per step, over all processes. "
+              f"[default: 4 blocks, {tunelib.DEFAULT_SENTENCE_BATCH} sentences]")
+@click.option("--context", default=128, show_default=True, help="Tokens per block (encoders: most tokens per sentence).")
 @click.option("--lr", default=1e-4, show_default=True, help="Peak learning rate (warm-up, then cosine).")
 @click.option("--seed", default=0, show_default=True, help="Seed of the data order.")
 @click.option("--decay", type=click.Choice(list(tunelib.DECAYS)), default=tunelib.DEFAULT_DECAY, show_default=True,
@@ -238,12 +239,17 @@ def expand(path, out, force, dtype):
 @click.option("--resume", is_flag=True, help="Continue from the checkpoint of an interrupted run.")
 @click.option("--train-norms", is_flag=True, help="Also train the norm weights.")
 @click.option("--train-dense", is_flag=True, help="Also train the feed-forward matrices the plan left dense.")
+@click.option("--embed-loss", type=click.Choice(list(tunelib.EMBED_LOSSES)), default=tunelib.DEFAULT_EMBED_LOSS,
+              show_default=True, help="Encoders: 1 − cosine, or squared error, of the normalised pooled embeddings.")
+@click.option("--hidden-weight", default=0.0, show_default=True,
+              help="Encoders: weight of the last hidden states' relative squared error against the teacher's.")
 @_force_opt("Replace --out, and a stale checkpoint, if they exist.")
 @_dtype_opt("the input directory's; training is in float32 either way")
 @click.option("--quiet", is_flag=True, help="No progress line.")
 @_json_opt()
 def tune(path, texts, out, steps, batch, context, lr, seed, decay, decay_coef, penalty_every, teacher, temperature,
-         mix, topk, eval_texts, eval_tokens, save_every, resume, train_norms, train_dense, force, dtype, quiet, as_json):
+         mix, topk, eval_texts, eval_tokens, save_every, resume, train_norms, train_dense, embed_loss, hidden_weight,
+         force, dtype, quiet, as_json):
     """Fine-tune a compressed directory's factors on text (distilling from the source model); also under torchrun."""
     def go():
         try:
@@ -251,8 +257,8 @@ def tune(path, texts, out, steps, batch, context, lr, seed, decay, decay_coef, p
                                 decay=decay, decay_coef=decay_coef, penalty_every=penalty_every,
                                 temperature=temperature, mix=mix, teacher=teacher, topk=topk,
                                 eval_texts=list(eval_texts), eval_tokens=eval_tokens, save_every=save_every,
-                                resume=resume, train_norms=train_norms, train_dense=train_dense, force=force,
-                                dtype=dtype, quiet=quiet)
+                                resume=resume, train_norms=train_norms, train_dense=train_dense,
+                                embed_loss=embed_loss, hidden_weight=hidden_weight, force=force, dtype=dtype, quiet=quiet)
         except tunelib.TuneInterrupted as e:
             click.echo(str(e), err=True)
             sys.exit(130)
@@ -265,7 +271,13 @@ def tune(path, texts, out, steps, batch, context, lr, seed, decay, decay_coef, p
              if c and r["steps"] > r["start_step"] else "nothing left to train"]
     before, after = r["eval"]["before"] or {}, r["eval"]["after"] or {}
     for name in after:
-        lines.append(f"held-out {name}: perplexity {before[name]['perplexity']:.3f} -> {after[name]['perplexity']:.3f}")
+        b, a = before[name], after[name]
+        if "perplexity" in a:
+            lines.append(f"held-out {name}: perplexity {b['perplexity']:.3f} -> {a['perplexity']:.3f}")
+        else:
+            lines.append(f"held-out {name} ({a['sentences']} sentences) against the teacher: mean cosine "
+                         f"{b['cosine']['mean']:.4f} -> {a['cosine']['mean']:.4f}, top-1 neighbour unchanged "
+                         f"{100 * b['neighbour_agreement']:.1f}% -> {100 * a['neighbour_agreement']:.1f}%")
     lines.append(f"wrote {r['out']}")
     _emit(r, as_json, "\n".join(lines))
 
@@ -317,7 +329,14 @@ def run(path, keep, texts, eval_texts, strategy, sequential, refit, steps, decay
     from .report import compare_text
     r = _run(api.run, path, out, keep=keep, texts=list(texts), eval_texts=list(eval_texts) or None, strategy=strategy,
              sequential=sequential, refit=refit, steps=steps, decay=decay, max_eval_tokens=eval_tokens or None, force=force)
-    _emit(r["compare"], as_json, compare_text(r["compare"]) + f"\nwrote {out}/compressed, {out}/tuned and {out}/report")
+    before = ""
+    if r["compare_compressed"]:
+        q = r["compare_compressed"]["quality"]
+        before = (f"\nbefore the tune (compressed/ against A): mean cosine {q['cosine']['mean']:.4f}, p5 "
+                  f"{q['cosine']['p5']:.4f}, min {q['cosine']['min']:.4f}, top-1 neighbour unchanged "
+                  f"{100 * q['neighbour_agreement']:.1f}%, Spearman {q['spearman']:.4f}")
+    _emit(r["compare"], as_json, compare_text(r["compare"]) + before
+          + f"\nwrote {out}/compressed, {out}/tuned and {out}/report")
 
 
 if __name__ == "__main__":

@@ -25,6 +25,7 @@ from .loading import Loaded, load_weights
 from .model import KVCache, Transformer, build, fuse
 from .builtin import resolve
 from .progress import seconds
+from .evaluate import embedding_agreement
 from .texts import read_lines, read_texts
 
 SCHEMA = "attncompress.compare/1"
@@ -156,54 +157,39 @@ def format_effect(a: _Model, b: _Model, texts: list[str], context: int, stride: 
             "ratio": pr["perplexity"] / p32["perplexity"], "tokens": p32["tokens"]}
 
 
-def embedding_agreement(ea: torch.Tensor, eb: torch.Tensor) -> dict:
-    """Cosine of the two models' embeddings of each line, and how often the top-1 neighbour is unchanged.
-
-    Args:
-        ea, eb: (n_lines, d_a), (n_lines, d_b) mean-pooled embeddings of the same lines (d_a == d_b).
-    Returns:
-        {"cosine": {"mean", "p5", "min"}, "neighbour_agreement"}: cosine per line of ea[i] and eb[i];
-        neighbour_agreement is the fraction of lines whose most similar other line (by cosine) is the same
-        under both models. Example: identical embeddings → cosine 1, agreement 1.
-    Raises:
-        CompressError: fewer than 2 lines.
-    """
-    n = ea.shape[0]
-    if n < 2:
-        raise CompressError(f"embedding agreement needs at least 2 lines of text, got {n}; give more lines")
-    a, b = F.normalize(ea.double(), dim=1), F.normalize(eb.double(), dim=1)  # (n, d), unit rows
-    cos = (a * b).sum(1)  # (n,)
-    sa, sb = a @ a.T, b @ b.T  # (n, d) @ (d, n) → (n, n) similarities within each model
-    eye = torch.eye(n, dtype=torch.bool)
-    sa, sb = sa.masked_fill(eye, -math.inf), sb.masked_fill(eye, -math.inf)  # a line is not its own neighbour
-    agree = (sa.argmax(1) == sb.argmax(1)).double().mean()
-    return {"cosine": {"mean": float(cos.mean()), "p5": float(torch.quantile(cos, 0.05)), "min": float(cos.min())},
-            "neighbour_agreement": float(agree)}
-
-
-def _lines_of(texts: list[str] | None, lines: list[str] | None) -> tuple[list[str], list[dict]]:
-    """Sentences for an encoder: the given lines, else every non-empty line of the text files."""
+def _line_sets(texts: list[str] | None, lines: list[str] | None) -> tuple[list[tuple[str, list[str]]], list[dict]]:
+    """Sentences for an encoder, per text: (name, lines) for each text file (every non-empty line), or the given lines."""
     if lines is not None:
-        return [ln for ln in lines if ln.strip()], []
-    out = []
-    for t in texts:
-        out.extend(read_lines(t))
+        return [("lines", [ln for ln in lines if ln.strip()])], []
     _, described = read_texts(texts)
-    return out, described
+    return [(d["name"], read_lines(t)) for t, d in zip(texts, described)], described
 
 
-def embeddings(a: _Model, b: _Model, sentences: list[str], described: list[dict]) -> dict:
-    """Agreement of two encoders' mean-pooled embeddings of the same sentences."""
-    joined = "\n".join(sentences)
-    _, tok_note = _same_tokens(a, b, joined)
+def _agreement(ea: torch.Tensor, eb: torch.Tensor) -> dict:
+    """`evaluate.embedding_agreement` without the per-sentence list (kept once, on the whole comparison)."""
+    out = embedding_agreement(ea, eb)
+    out.pop("cosines")
+    return out
+
+
+def embeddings(a: _Model, b: _Model, sets: list[tuple[str, list[str]]], described: list[dict]) -> dict:
+    """Agreement of two encoders' mean-pooled embeddings of the same sentences, over all and per text."""
+    sentences = [ln for _, group in sets for ln in group]
+    _, tok_note = _same_tokens(a, b, "\n".join(sentences))
     tok = a.loaded.tokenizer or b.loaded.tokenizer
     ea = evaluate.embed(a.loaded.model, tok, sentences)
     eb = evaluate.embed(b.loaded.model, tok, sentences)
     if ea.shape[1] != eb.shape[1]:
         raise CompressError(f"{a.loaded.path} and {b.loaded.path}: embedding widths differ "
                             f"({ea.shape[1]} vs {eb.shape[1]}); compare a model with its own compressed version")
+    per_text, at = [], 0
+    for name, group in sets:
+        if len(sets) > 1 and len(group) >= 2:  # neighbours within one text: a search index of that kind
+            per_text.append({"name": name, "lines": len(group), **_agreement(ea[at:at + len(group)],
+                                                                            eb[at:at + len(group)])})
+        at += len(group)
     return {"kind": "embedding", "texts": described, "tokenizer": tok_note, "lines": len(sentences),
-            **embedding_agreement(ea, eb)}
+            **embedding_agreement(ea, eb), "per_text": per_text}
 
 
 # ----------------------------------------------------------------------------------------------- speed
@@ -355,7 +341,10 @@ def speed(a: _Model, b: _Model, runs: int = RUNS, threads: int | None = None,
                 ids = torch.randint(0, min(ma.shape.vocab_size, mb.shape.vocab_size), (BATCH_LINES, s), generator=g)
                 mask = torch.ones_like(ids)
             t = time_encoders([ma, mb], ids, mask, runs=runs)
-            out["batch"] = {"sentences": ids.shape[0], "tokens": int(mask.sum()), **_side(t["batch"])}
+            side = _side(t["batch"])
+            out["batch"] = {"sentences": ids.shape[0], "tokens": int(mask.sum()), **side,
+                            "a_sentences_s": ids.shape[0] / side["a_ms"] * 1e3,
+                            "b_sentences_s": ids.shape[0] / side["b_ms"] * 1e3}
         out["load_average_after"] = round(os.getloadavg()[0], 2)
     return out
 
@@ -397,7 +386,9 @@ def compare(a: str, b: str, texts: list[str] | None = None, lines: list[str] | N
         - "quality": null without text; decoders: {"kind": "perplexity", "texts": [{"name", "bytes", "sha256",
           "lines"}], "tokenizer" (how the token ids were checked), "tokens", "context", "stride", "a", "b"
           (perplexities), "nll_a", "nll_b" (nats per token), "ratio" (b / a)}; encoders: {"kind": "embedding",
-          "texts", "tokenizer", "lines", "cosine": {"mean", "p5", "min"}, "neighbour_agreement"}.
+          "texts", "tokenizer", "lines", "cosine": {"mean", "p5", "min"}, "neighbour_agreement", "spearman",
+          "cosines" (per line), "per_text": [{"name", "lines", "cosine", "neighbour_agreement", "spearman"}] (one
+          per text file, neighbours within that file; empty for one file)} (see `evaluate.embedding_agreement`).
         - "format_effect": null unless decoders with text and B stored narrower than float32; else
           {"format" (B's), "measured_on": "a", "float32", "rounded" (perplexities of A as it runs and of A
           rounded to B's format), "ratio" (rounded / float32), "tokens"}.
@@ -409,7 +400,8 @@ def compare(a: str, b: str, texts: list[str] | None = None, lines: list[str] | N
           "b_limit_ms" (bytes / bandwidth), "a_over_limit", "b_over_limit" (time / limit), "limit_speedup",
           "a_tokens_per_s", "b_tokens_per_s" (generation rate: 1 / decode time)},
           "bandwidth_gb_s" (measured streaming read, 1e9 bytes/s); for encoders "batch": {"sentences", "tokens",
-          "a_ms", "b_ms", "speedup", "a_runs_ms", "b_runs_ms"}. Every "speedup" is time of A / time of B.
+          "a_ms", "b_ms", "speedup", "a_runs_ms", "b_runs_ms", "a_sentences_s", "b_sentences_s"} (a batch of
+          32 sentences of the text, repeated when it has fewer). Every "speedup" is time of A / time of B.
 
     Raises:
         CompressError: unreadable models; a decoder against an encoder; different vocabularies or tokenizers
@@ -438,8 +430,9 @@ def compare(a: str, b: str, texts: list[str] | None = None, lines: list[str] | N
             report["quality"] = perplexities(ma, mb, list(texts), context, stride, max_tokens, quiet)
             report["format_effect"] = format_effect(ma, mb, list(texts), context, stride, max_tokens, quiet)
     elif texts or lines:
-        sentences, described = _lines_of(list(texts) if texts else None, lines)
-        report["quality"] = embeddings(ma, mb, sentences, described)
+        sets, described = _line_sets(list(texts) if texts else None, lines)
+        report["quality"] = embeddings(ma, mb, sets, described)
+        sentences = [ln for _, group in sets for ln in group]
     if speed_runs:
         report["speed"] = speed(ma, mb, runs=speed_runs, threads=threads, sentences=sentences)
     return report

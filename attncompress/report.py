@@ -127,6 +127,12 @@ def compare_rows(r: dict) -> list[tuple[str, str, str, str]]:
         rows.append((f"cosine A·B per line ({q['lines']} lines)", "", f"mean {c['mean']:.4f} p5 {c['p5']:.4f} "
                      f"min {c['min']:.4f}", ""))
         rows.append(("top-1 neighbour unchanged", "", f"{100 * q['neighbour_agreement']:.1f}%", ""))
+        rows.append(("Spearman of pairwise similarities", "", f"{q['spearman']:.4f}", ""))
+        for t in q.get("per_text", []):
+            c = t["cosine"]
+            rows.append((f"  {t['name']} ({t['lines']} lines)", "", f"cos {c['mean']:.4f} p5 {c['p5']:.4f} min "
+                         f"{c['min']:.4f}, top-1 {100 * t['neighbour_agreement']:.1f}%, Spearman {t['spearman']:.4f}",
+                         ""))
     if sp:
         if "prompt" in sp:
             p, d = sp["prompt"], sp["decode"]
@@ -142,6 +148,7 @@ def compare_rows(r: dict) -> list[tuple[str, str, str, str]]:
             t = sp["batch"]
             rows.append((f"batch of {t['sentences']} sentences (ms)", f"{t['a_ms']:.1f}", f"{t['b_ms']:.1f}",
                          f"speedup {t['speedup']:.2f}x"))
+            rows.append(("sentences/s", f"{t['a_sentences_s']:.0f}", f"{t['b_sentences_s']:.0f}", ""))
     return rows
 
 
@@ -257,8 +264,25 @@ def _bar_plot(plt, labels: list[str], values: list[list[float]], series: list[st
     plt.close(fig)
 
 
+def _cosine_plot(plt, cosines: list[float], path) -> None:
+    """Histogram of the per-sentence cosine between A's and B's embeddings, with its mean and 5th percentile."""
+    import statistics
+    fig, ax = plt.subplots(figsize=(6, 3.2))
+    ax.hist(cosines, bins=min(40, max(5, len(cosines) // 5)), color="tab:blue")
+    srt = sorted(cosines)
+    p5 = srt[max(0, round(0.05 * (len(srt) - 1)))]
+    for x, style, name in ((statistics.fmean(cosines), "-", "mean"), (p5, "--", "5th percentile")):
+        ax.axvline(x, color="black", linestyle=style, label=f"{name} {x:.3f}")
+    ax.set_xlabel("cosine of A's and B's embedding of a sentence")
+    ax.set_ylabel("sentences")
+    ax.legend(loc="upper left")
+    fig.tight_layout()
+    fig.savefig(path, dpi=110)
+    plt.close(fig)
+
+
 def write_compare(r: dict, out: str, force: bool) -> str:
-    """compare.json, report.md and (with matplotlib) ranks.png, quality.png and speed.png in one directory."""
+    """compare.json, report.md and (with matplotlib) ranks.png, quality.png, cosines.png (encoders) and speed.png."""
     from .io.write import atomic_dir, dumps
     with atomic_dir(out, force) as tmp:
         (tmp / "compare.json").write_text(dumps(r), encoding="utf-8")
@@ -282,6 +306,8 @@ def write_compare(r: dict, out: str, force: bool) -> str:
                           [[c["mean"]], [c["p5"]], [c["min"]], [q["neighbour_agreement"]]], ["A vs B"],
                           "cosine / fraction", tmp / "quality.png")
                 plots.append("quality.png")
+                _cosine_plot(plt, q["cosines"], tmp / "cosines.png")
+                plots.append("cosines.png")
             sp = r["speed"]
             if sp:
                 keys = [k for k in ("prompt", "decode", "batch") if k in sp]
