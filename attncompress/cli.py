@@ -5,15 +5,18 @@ import json
 import os
 import sys
 
-# Spinning OpenMP threads slow everything several-fold when another process shares the cores; waiting
-# passively costs nothing measurable on an idle machine. Set before torch starts its thread pool.
-os.environ.setdefault("OMP_WAIT_POLICY", "PASSIVE")
+from . import threads as threadlib
+
+# Threads and OpenMP waiting from the machine's load (or --threads / ATTNCOMPRESS_THREADS), decided before
+# torch starts its thread pool: spinning halves a decode step on free cores and wrecks it on shared ones.
+threadlib.configure(sys.argv)
 
 import click  # noqa: E402
 
 from . import api, compress as pipeline, tune as tunelib
 from .errors import CompressError
 from .factorize import DEFAULT_DAMPING
+from .io.storage import DTYPES
 from .io.write import DEFAULT_SHARD_SIZE
 from .strategies import DEFAULT_STRATEGY, STRATEGIES, WEIGHTS_ONLY_STRATEGY
 
@@ -44,6 +47,12 @@ def _force_opt(help: str = "Replace --out if it exists."):
 
 def _json_opt(help: str = "Print the report as JSON."):
     return click.option("--json", "as_json", is_flag=True, help=help)
+
+
+def _dtype_opt(default: str):
+    return click.option("--dtype", type=click.Choice(list(DTYPES)),
+                        help=f"Number format of the weights written (int8: per-output-channel weight-only; the "
+                             f"runtime widens to float32 at load). [default: {default}]")
 
 
 def _texts_opt(help: str, required: bool = False, name: str = "--text", dest: str = "texts"):
@@ -199,9 +208,10 @@ def plan(path, keep, strategy, texts, damping, out, as_json):
 @click.option("--shard-size", default=DEFAULT_SHARD_SIZE, show_default=True,
               help="Largest safetensors file to write; a bigger model is split into shards with an index.")
 @_cut_options
+@_dtype_opt("the source's float width; 16-bit for a quantised GGUF")
 @_json_opt()
 def compress(path, keep, plan_file, strategy, texts, weights_only, damping, out, force, calib_blocks, calib_context, shard_size,
-             sequential, refit, as_json):
+             sequential, refit, dtype, as_json):
     """Cut ranks under a budget and write a smaller checkpoint."""
     if weights_only:
         click.echo("warning: --weights-only truncates by weights alone; on real small language models this can "
@@ -210,7 +220,7 @@ def compress(path, keep, plan_file, strategy, texts, weights_only, damping, out,
         raise click.UsageError("give --keep or --plan, not both")
     r = _run(api.compress, path, out, keep=keep, plan_file=plan_file, strategy=strategy, texts=list(texts) or None,
              weights_only=weights_only, damping=damping, force=force, n_blocks=calib_blocks, context=calib_context,
-             shard_size=shard_size, sequential=sequential, refit=refit)
+             shard_size=shard_size, sequential=sequential, refit=refit, dtype=dtype)
     from .report import plan_text
     _emit(r, as_json, plan_text(r["plan"]) + f"\nwrote {r['out']} ({r['method']['factors']}) in "
           + ", ".join(f"{k} {v:.1f}s" for k, v in r["seconds"].items()))
@@ -220,9 +230,11 @@ def compress(path, keep, plan_file, strategy, texts, weights_only, damping, out,
 @click.argument("path")
 @_out_opt("Dense model directory to write.", required=True)
 @_force_opt()
-def expand(path, out, force):
+@click.option("--dtype", type=click.Choice([d for d in DTYPES if d != "int8"]),
+              help="Float format of the weights written. [default: the directory's; float16 for an int8 one]")
+def expand(path, out, force, dtype):
     """Multiply a compressed directory's factors back into a dense model directory of the source layout."""
-    r = _run(api.expand, path, out, force)
+    r = _run(api.expand, path, out, force, dtype)
     click.echo(f"wrote {r['out']}: {r['tensors']} tensors, {r['parameters']:,} parameters")
 
 
@@ -264,12 +276,13 @@ def expand(path, out, force):
 @click.option("--patience", default=tunelib.DEFAULT_PATIENCE, show_default=True,
               help="Stop after this many held-out evaluations without a new lowest loss.")
 @_force_opt("Replace --out, and a stale checkpoint, if they exist.")
+@_dtype_opt("the input directory's; training is in float32 either way")
 @click.option("--quiet", is_flag=True, help="No progress line.")
 @_json_opt()
 def tune(path, texts, out, steps, batch, context, lr, seed, decay, decay_coef, penalty_every, teacher, temperature,
          mix, topk, eval_texts, eval_tokens, save_every, resume, train_norms, train_dense, embed_loss, hidden_weight,
          heldout, eval_every, patience,
-         force, quiet, as_json):
+         force, dtype, quiet, as_json):
     """Fine-tune a compressed directory's factors on text (distilling from the source model); also under torchrun."""
     def go():
         try:
@@ -279,7 +292,7 @@ def tune(path, texts, out, steps, batch, context, lr, seed, decay, decay_coef, p
                                 eval_texts=list(eval_texts), eval_tokens=eval_tokens, save_every=save_every,
                                 resume=resume, train_norms=train_norms, train_dense=train_dense,
                                 embed_loss=embed_loss, hidden_weight=hidden_weight, heldout=heldout,
-                                eval_every=eval_every, patience=patience, force=force, quiet=quiet)
+                                eval_every=eval_every, patience=patience, force=force, dtype=dtype, quiet=quiet)
         except tunelib.TuneInterrupted as e:
             click.echo(str(e), err=True)
             sys.exit(130)
@@ -314,8 +327,9 @@ def tune(path, texts, out, steps, batch, context, lr, seed, decay, decay_coef, p
               "[default: --context]")
 @click.option("--max-tokens", type=int, help="Score only the first N tokens of the text.")
 @click.option("--runs", default=5, show_default=True, help="Timed runs per speed figure (median); 0 skips speed.")
-@click.option("--threads", type=int, help="Threads for the speed measurement [default: torch's]; on cores shared "
-              "with other jobs set OMP_WAIT_POLICY=PASSIVE too.")
+@click.option("--threads", help="auto, N, or N:active / N:passive: threads and OpenMP waiting [default: auto, from the "
+              "load average against the cores; also ATTNCOMPRESS_THREADS]; on a machine shared with other heavy "
+              "jobs use 1 or N:passive.")
 @_json_opt("Print the report as JSON (schema attncompress.compare/1).")
 @_out_opt("Write compare.json, report.md and PNG plots to this directory.")
 @_force_opt()
@@ -323,8 +337,10 @@ def tune(path, texts, out, steps, batch, context, lr, seed, decay, decay_coef, p
 def compare(a, b, texts, context, stride, max_tokens, runs, threads, as_json, out, force, quiet):
     """Model A against model B: size, KV cache, perplexity or embedding agreement, and speed side by side."""
     from .report import compare_text, write_compare
+    if threads is not None:
+        _run(threadlib.parse_spec, threads)
     r = _run(api.compare, a, b, list(texts) or None, out=out, force=force, context=context, stride=stride,
-             max_tokens=max_tokens, speed_runs=runs, threads=threads, quiet=quiet)
+             max_tokens=max_tokens, speed_runs=runs, quiet=quiet)
     note = _run(write_compare, r, out, force) if out else None
     _emit(r, as_json, compare_text(r) + (f"\nwrote {out}/report.md and {out}/compare.json; {note}" if out else ""))
 

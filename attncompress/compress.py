@@ -19,6 +19,7 @@ import torch
 from . import analysis, arch, calibrate, factorize as fz, plan as planlib, strategies
 from .loading import Loaded, is_compressed, tokens
 from .io.read import open_source
+from .io import storage
 from .io.write import DEFAULT_SHARD_SIZE
 from .model import build
 from .builtin import resolve
@@ -508,12 +509,14 @@ def compress(path: str, out: str, *, keep: float | None = None, plan_file: str |
              strategy: str | None = None, texts: list[str] | None = None, weights_only: bool = False,
              damping: float = DEFAULT_DAMPING, force: bool = False, quiet: bool = False, context: int = CALIB_CONTEXT,
              n_blocks: int = CALIB_BLOCKS, shard_size: int | str = DEFAULT_SHARD_SIZE, sequential: bool = True,
-             refit: bool = True, refit_damping: float = fz.DEFAULT_REFIT_DAMPING, priced: bool = True) -> dict:
+             refit: bool = True, refit_damping: float = fz.DEFAULT_REFIT_DAMPING, priced: bool = True,
+             dtype: str | None = None) -> dict:
     """Compress a source checkpoint into a directory our runtime (and `expand`) reads.
 
     Streams: one layer's weights are in memory at a time (see the pipeline note above), and the output is
     written as it is made, to `model.safetensors`, or to shards with an index when it exceeds `shard_size`
-    (bytes, or a size such as "2GB"). Everything goes to a temporary sibling of `out` that is renamed at the
+    (bytes, or a size such as "2GB"), in format `dtype` (see `io.storage`; None: the source's own float
+    width, 16-bit for a quantised GGUF). Everything goes to a temporary sibling of `out` that is renamed at the
     end, so a failure or an interruption leaves nothing behind.
 
     Args (beyond the command's options): `strategy` None picks `loss` with calibration text, `uniform`
@@ -535,6 +538,8 @@ def compress(path: str, out: str, *, keep: float | None = None, plan_file: str |
     if not plan_file:
         _check_budget(keep, resolve_strategy(strategy, bool(texts) and priced))
     shard_bytes = parse_size(shard_size)
+    if dtype is not None:
+        storage.check_dtype(dtype)
     # Everything that can be checked without reading the weights is checked before any work.
     timer = Timer()
     loaded = open_model(path)
@@ -542,10 +547,11 @@ def compress(path: str, out: str, *, keep: float | None = None, plan_file: str |
     calib = _calibration(loaded, texts, context, n_blocks) if texts else None
     timer.lap("load")
     sh, src = loaded.shape, loaded.source
+    dtype = dtype or storage.default_dtype(src)
     with atomic_dir(out, force) as tmp:
         an = _first_pass(loaded, calib, damping, tmp / ".calibration", quiet, timer, priced)
         p = make_rank_plan(an, keep, strategy, plan=given)
-        with ShardWriter(tmp, shard_bytes) as shards:
+        with ShardWriter(tmp, shard_bytes, dtype=dtype) as shards:
             _second_pass(an, p, shards, quiet, sequential, refit, refit_damping)
             files = shards.close()
         if an.scratch is not None:
@@ -558,7 +564,7 @@ def compress(path: str, out: str, *, keep: float | None = None, plan_file: str |
                                  for f in src.files]},
             "family": sh.family, "model_type": (src.config or {}).get("model_type"),
             "shape": json.loads(sh.to_json()), "plan": json.loads(p.to_json()), "method": method,
-            "calibration": an.calibration,
+            "calibration": an.calibration, "dtype": dtype,
         }
         write_model_dir(tmp, None, manifest, loaded.tokenizer, src.config)
         timer.lap("write")

@@ -15,7 +15,8 @@ def inspect_text(r: dict) -> str:
              "parameters: " + ", ".join(f"{k} {_m(v)}" for k, v in r["parameters"].items()),
              f"block matrices: {_m(r['block_matrix_parameters'])}"
              + (f"; KV cache {r['kv_bytes_per_token']:,} bytes/token (float32)" if r["kv_bytes_per_token"] else ""),
-             "dtypes: " + ", ".join(f"{k} x{v}" for k, v in r["dtypes"].items()), ""]
+             "dtypes: " + ", ".join(f"{k} x{v}" for k, v in r["dtypes"].items())
+             + (f" (format {r['storage']}; runs in float32)" if r.get("storage") else ""), ""]
     lines.append(f"{'layer':>5}  {'QK (heads x width)':<22} {'VO (groups x width)':<22} feed-forward")
     for L in r["layers"]:
         qk, vo = L["qk"], L["vo"]
@@ -120,7 +121,8 @@ def compare_rows(r: dict) -> list[tuple[str, str, str, str]]:
              _fmt(ratio["parameters"], ".3f")),
             ("block-matrix parameters", _m(a["parameters"]["block_matrices"]), _m(b["parameters"]["block_matrices"]),
              _fmt(ratio["block_matrices"], ".3f"))]
-    disk = [_bytes(m["disk"]["bytes"]) + (" (quantised)" if m["disk"]["quantised"] else "") for m in (a, b)]
+    disk = [_bytes(m["disk"]["bytes"]) + f" ({m['disk'].get('format') or ('quantised' if m['disk']['quantised'] else '?')})"
+            for m in (a, b)]
     rows.append(("bytes on disk", disk[0], disk[1], _fmt(ratio["disk_bytes"], ".3f")))
     rows.append(("bytes in memory (float32)", _bytes(a["runtime_bytes"]), _bytes(b["runtime_bytes"]),
                  _fmt(ratio["runtime_bytes"], ".3f")))
@@ -129,6 +131,10 @@ def compare_rows(r: dict) -> list[tuple[str, str, str, str]]:
                      _fmt(ratio["kv_bytes_per_token"], ".3f")))
     if q and q["kind"] == "perplexity":
         rows += _perplexity_rows(q)
+        fe = r.get("format_effect")
+        if fe:
+            rows.append((f"perplexity of A as {fe['format']} (format alone)", _ppl(fe["float32"]), _ppl(fe["rounded"]),
+                         _ppl(fe["ratio"])))
     elif q:
         c = q["cosine"]
         rows.append((f"cosine A·B per line ({q['lines']} lines)", "", f"mean {c['mean']:.4f} p5 {c['p5']:.4f} "
@@ -146,6 +152,7 @@ def compare_rows(r: dict) -> list[tuple[str, str, str, str]]:
             rows.append((f"prompt 1x{p['tokens']} (ms)", f"{p['a_ms']:.1f}", f"{p['b_ms']:.1f}",
                          f"speedup {p['speedup']:.2f}x"))
             rows.append(("decode (ms/token)", f"{d['a_ms']:.1f}", f"{d['b_ms']:.1f}", f"speedup {d['speedup']:.2f}x"))
+            rows.append(("generation (tokens/s)", f"{d['a_tokens_per_s']:.1f}", f"{d['b_tokens_per_s']:.1f}", ""))
             if "a_limit_ms" in d:
                 rows.append(("  bytes-read limit (ms/token)", f"{d['a_limit_ms']:.1f}", f"{d['b_limit_ms']:.1f}",
                              f"speedup {d['limit_speedup']:.2f}x at best"))
@@ -174,13 +181,16 @@ def _speed_note(sp: dict | None) -> str:
     if not sp:
         return "speed not measured"
     bw = f"streaming read {sp['bandwidth_gb_s']:.1f} GB/s; " if "bandwidth_gb_s" in sp else ""
-    note = (f"speed: same process, A and B interleaved, median of {sp['runs']} runs, {sp['threads']} threads; "
+    tc = sp.get("thread_choice") or {}
+    how = (f"{sp['threads']} threads, {tc['wait_policy']} waiting ({tc['reason']})" if tc
+           else f"{sp['threads']} threads")
+    note = (f"speed: same process, A and B interleaved, median of {sp['runs']} runs, {how}; "
             f"{bw}speedup = time A / time B")
     series = [sp[k][f"{side}_runs_ms"] for k in ("prompt", "decode", "batch") if k in sp for side in "ab"]
     spread = max((max(r) / min(r) for r in series if r), default=1.0)
     if spread > 1.3:
         note += (f"\nnoisy: runs of one figure differ by up to {spread:.1f}x (a loaded machine?); try --threads 1, "
-                 "more --runs, or OMP_WAIT_POLICY=PASSIVE when other jobs share the cores")
+                 "more --runs, or --threads N:passive when other jobs share the cores")
     return note
 
 

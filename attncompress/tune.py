@@ -96,6 +96,8 @@ from . import evaluate
 from .errors import CompressError
 from .loading import is_compressed, load_model, read_manifest, tokens
 from .model import LayerNorm, Linear, LowRankLinear, Transformer
+from .io import storage
+from .io.storage import decode
 from .io.write import atomic_dir, check_output, write_model_dir
 from .builtin import BUILTIN, resolve
 from .progress import Progress, Timer
@@ -1042,20 +1044,22 @@ class _Run:
 
 # ------------------------------------------------------------------------------------ writing the result
 
-def _write_tuned(job: _Job, trained: list, section: dict) -> None:
-    """The tuned directory: the source's tensors with the trained ones replaced, its manifest with `tune`."""
+def _write_tuned(job: _Job, trained: list, section: dict, dtype: str) -> None:
+    """The tuned directory in format `dtype`: the source's tensors with the trained ones replaced, its manifest
+    with `tune`."""
     manifest = copy.deepcopy(job.manifest)
+    manifest["dtype"] = dtype
     if "tune" in job.manifest:
         section["previous"] = job.manifest["tune"]
     manifest["tune"] = section
     source = job.loaded.source
-    weights = {n: source.get(n) for n in source.names()}
+    weights = decode(source.names(), source.get)  # float32 canonical tensors, int8 pairs multiplied back
     for n, p, transposed in trained:
         weights[n] = (p.detach().T if transposed else p.detach()).contiguous().clone()
     cfg_file = job.src / "source-config.json"
     config = json.loads(cfg_file.read_text(encoding="utf-8")) if cfg_file.is_file() else None
     with atomic_dir(job.out, job.force) as tmp:
-        write_model_dir(tmp, weights, manifest, job.loaded.tokenizer, config)
+        write_model_dir(tmp, weights, manifest, job.loaded.tokenizer, config, dtype)
     job.ckpt.unlink(missing_ok=True)
 
 
@@ -1069,7 +1073,7 @@ def tune(src_dir: str | Path, texts: list[str | Path], out: str | Path, *, steps
          save_every: int = 100, resume: bool = False, train_norms: bool = False, train_dense: bool = False,
          embed_loss: str = DEFAULT_EMBED_LOSS, hidden_weight: float = 0.0, heldout: float = DEFAULT_HELDOUT,
          eval_every: int = DEFAULT_EVAL_EVERY, patience: int = DEFAULT_PATIENCE, force: bool = False,
-         quiet: bool = False) -> dict:
+         quiet: bool = False, dtype: str | None = None) -> dict:
     """Fine-tune the factors of a compressed directory on text and write the tuned directory.
 
     Args:
@@ -1092,6 +1096,7 @@ def tune(src_dir: str | Path, texts: list[str | Path], out: str | Path, *, steps
         heldout, eval_every, patience: fraction of the blocks held out, steps between held-out evaluations,
             evaluations without a new best before stopping (see "Best step" in the module docstring).
         force, quiet: replace `out` and a stale checkpoint; no progress line.
+        dtype: format of the weights written (`io.storage`; default: the input directory's). Training is float32.
 
     Returns:
         A report dict: out, steps, steps_run, tokens, seconds, tokens_per_second, curve, heldout, data (with
@@ -1103,6 +1108,8 @@ def tune(src_dir: str | Path, texts: list[str | Path], out: str | Path, *, steps
         TuneInterrupted: Ctrl-C; the last checkpoint (if any) is complete.
     """
     timer = Timer()
+    if dtype is not None:
+        storage.check_dtype(dtype)
     world_size = max(1, int(os.environ.get("WORLD_SIZE", "1")))
     _check_options(steps, batch or world_size, context, lr, decay, decay_coef, penalty_every, temperature, mix, topk,
                    save_every, eval_tokens, world_size, embed_loss, hidden_weight)
@@ -1155,7 +1162,7 @@ def tune(src_dir: str | Path, texts: list[str | Path], out: str | Path, *, steps
                             "before": eval_before, "after": eval_after},
                    "curve": run.curve, "heldout": _heldout_report(run)}
         if rank == 0:
-            _write_tuned(job, trained, section)
+            _write_tuned(job, trained, section, dtype or storage.default_dtype(None, job.manifest))
         _barrier(world)
         timer.lap("write")
     finally:

@@ -158,7 +158,7 @@ PPL_KEYS = {"kind", "texts", "tokenizer", "tokens", "context", "stride", "a", "b
 EMB_KEYS = {"kind", "texts", "tokenizer", "lines", "cosine", "neighbour_agreement", "spearman", "cosines", "per_text"}
 SIDE_KEYS = {"a_ms", "b_ms", "speedup", "a_runs_ms", "b_runs_ms"}
 DECODE_KEYS = SIDE_KEYS | {"cached_tokens", "tokens_per_run", "a_bytes", "b_bytes", "a_limit_ms", "b_limit_ms",
-                           "a_over_limit", "b_over_limit", "limit_speedup"}
+                           "a_over_limit", "b_over_limit", "limit_speedup", "a_tokens_per_s", "b_tokens_per_s"}
 
 
 def test_json_has_the_documented_keys(tiny_dirs, compressed, calib_file, lines_file, tmp_path):
@@ -167,14 +167,16 @@ def test_json_has_the_documented_keys(tiny_dirs, compressed, calib_file, lines_f
                                str(calib_file), "--runs", "2", "--json", "--quiet", "--out", str(tmp_path / "rep")])
     assert res.exit_code == 0, res.output
     r = json.loads(res.output)
-    assert r["schema"] == SCHEMA and set(r) == {"schema", "a", "b", "ratios", "quality", "speed"}
+    assert r["schema"] == SCHEMA and set(r) == {"schema", "a", "b", "ratios", "quality", "format_effect", "speed"}
     assert set(r["a"]) == set(r["b"]) == MODEL_KEYS and set(r["ratios"]) == RATIO_KEYS
     assert set(r["a"]["parameters"]) == {"total", "block_matrices", "groups"}
-    assert set(r["a"]["disk"]) == {"bytes", "files", "quantised", "dtypes", "note"}
+    assert set(r["a"]["disk"]) == {"bytes", "files", "quantised", "dtypes", "format", "note"}
+    assert r["a"]["disk"]["format"] == r["b"]["disk"]["format"] == "float32" and r["format_effect"] is None
     assert r["a"]["plan"] is None and set(r["b"]["plan"]) == {"strategy", "keep", "layers", "full"}
     assert set(r["quality"]) == PPL_KEYS
     sp = r["speed"]
-    assert set(sp) == {"threads", "runs", "prompt", "decode", "bandwidth_gb_s"}
+    assert set(sp) == {"threads", "runs", "thread_choice", "load_average_after", "prompt", "decode", "bandwidth_gb_s"}
+    assert set(sp["thread_choice"]) == {"threads", "wait_policy", "reason", "load_average", "cores"}
     assert set(sp["prompt"]) == SIDE_KEYS | {"tokens"} and set(sp["decode"]) == DECODE_KEYS
     assert len(sp["decode"]["a_runs_ms"]) == 2 and sp["prompt"]["tokens"] == 256
     # definition: speedup = time of A / time of B
@@ -187,7 +189,7 @@ def test_json_has_the_documented_keys(tiny_dirs, compressed, calib_file, lines_f
     assert res.exit_code == 0, res.output
     r = json.loads(res.output)
     assert set(r["quality"]) == EMB_KEYS and set(r["quality"]["cosine"]) == {"mean", "p5", "min"}
-    assert set(r["speed"]) == {"threads", "runs", "batch"}
+    assert set(r["speed"]) == {"threads", "runs", "thread_choice", "load_average_after", "batch"}
     assert set(r["speed"]["batch"]) == SIDE_KEYS | {"sentences", "tokens", "a_sentences_s", "b_sentences_s"}
     assert r["speed"]["batch"]["sentences"] == 32
     # definition: sentences per second of a batch of 32 = 32 / its time
