@@ -11,6 +11,10 @@ hooks to accumulate the input Gram matrices the whitened spectra need:
 Gram matrices are summed in float64 from float32 per-batch products (the
 products are exact enough per batch; the sum over tens of thousands of tokens
 is where float32 would lose digits).
+
+Padded batches (encoder sentences): whoever runs a batch sets `RealTokens.mask` to its (b, s) mask, and
+every hook keeps only the rows of real tokens, so a padded batch adds exactly what its sentences would
+add one by one.
 """
 from __future__ import annotations
 
@@ -38,6 +42,21 @@ class LayerStats:
     gate_sens: torch.Tensor | None = None  # (f,) the same for the gate output (gated feed-forward only)
 
 
+@dataclass
+class RealTokens:
+    """The real (not padded) positions of the batch in flight: (b, s) bool, or None when every position is real.
+
+    The runner sets `mask` before each forward pass; the statistic hooks read it.
+    """
+    mask: torch.Tensor | None = None
+
+    def rows(self, x: torch.Tensor) -> torch.Tensor:
+        """(b, s, w) activations → (n, w) rows of the real tokens. Example: mask [[1, 1, 0]] → the first 2 rows."""
+        if self.mask is None:
+            return x.reshape(-1, x.shape[-1])
+        return x[self.mask.bool()]  # (n_real, w), in (batch, position) order
+
+
 def empty_stats(shape: ModelShape) -> LayerStats:
     """Zero statistics for one layer, ready for `stat_hooks` to fill."""
     d, f = shape.d_model, shape.d_ff
@@ -45,11 +64,16 @@ def empty_stats(shape: ModelShape) -> LayerStats:
     return LayerStats(z(d, d), z(d), z(d, d), z(f, f), 0)
 
 
-def stat_hooks(blk, st: LayerStats, shape: ModelShape) -> list:
-    """Install the hooks that accumulate one block's statistics into `st`; returns the handles to remove."""
+def stat_hooks(blk, st: LayerStats, shape: ModelShape, real: RealTokens | None = None) -> list:
+    """Install the hooks that accumulate one block's statistics into `st`; returns the handles to remove.
+
+    With `real`, only the positions its current mask marks as real count (see the module docstring).
+    """
+    real = real if real is not None else RealTokens()
+
     def add(field):
         def hook(_module, args):
-            x = args[0].reshape(-1, args[0].shape[-1])  # (n, d) or (n, f)
+            x = real.rows(args[0])  # (n, d) or (n, f)
             g = getattr(st, field)
             g += (x.T @ x).double()  # float32 product per batch, float64 sum
             if field == "attn_gram":
@@ -57,23 +81,28 @@ def stat_hooks(blk, st: LayerStats, shape: ModelShape) -> list:
                 st.tokens += x.shape[0]
         return hook
     return [blk.attn.register_forward_pre_hook(add("attn_gram")), blk.ff.register_forward_pre_hook(add("ff_gram")),
-            blk.ff.down.register_forward_pre_hook(add("down_gram"))] + sensitivity_hooks(blk.ff, st, shape)
+            blk.ff.down.register_forward_pre_hook(add("down_gram"))] + sensitivity_hooks(blk.ff, st, shape, real)
 
 
 @torch.no_grad()
-def collect_stats(model: Transformer, blocks: torch.Tensor, batch: int = 8, quiet: bool = True) -> list[LayerStats]:
+def collect_stats(model: Transformer, blocks: torch.Tensor, batch: int = 8, quiet: bool = True,
+                  mask: torch.Tensor | None = None) -> list[LayerStats]:
     """Run calibration token blocks (n_blocks, s) through the whole model and accumulate per-layer statistics.
 
-    The output head is never run: only the blocks' inputs are needed. (`compress` streams layer by layer
-    with the same hooks instead.)
+    `mask` (n_blocks, s), for padded sentences: 1 at real tokens; padded positions are neither attended nor
+    counted. The output head is never run: only the blocks' inputs are needed. (`compress` streams layer by
+    layer with the same hooks instead.)
     """
     sh = model.shape
     stats = [empty_stats(sh) for _ in range(sh.n_layers)]
-    handles = [h for blk, st in zip(model.blocks, stats) for h in stat_hooks(blk, st, sh)]
+    real = RealTokens()
+    handles = [h for blk, st in zip(model.blocks, stats) for h in stat_hooks(blk, st, sh, real)]
     try:
         with Progress(blocks.shape[0] * blocks.shape[1], "calibration", unit="tok", quiet=quiet) as bar:
             for j in range(0, blocks.shape[0], batch):
-                model.hidden(blocks[j:j + batch])
+                m = None if mask is None else mask[j:j + batch]
+                real.mask = m
+                model.hidden(blocks[j:j + batch], attention_mask=m)
                 bar.update(blocks[j:j + batch].numel())
     finally:
         for h in handles:
@@ -81,20 +110,21 @@ def collect_stats(model: Transformer, blocks: torch.Tensor, batch: int = 8, quie
     return stats
 
 
-def sensitivity_hooks(ff, st: LayerStats, shape: ModelShape) -> list:
+def sensitivity_hooks(ff, st: LayerStats, shape: ModelShape, real: RealTokens | None = None) -> list:
     """Hooks that accumulate how strongly an error in each gate/up output channel reaches the down input.
 
     Gated: down input h = act(g) ⊙ u, so ∂h/∂u = act(g) and ∂h/∂g = act'(g) ⊙ u. Plain: h = act(u),
     ∂h/∂u = act'(u). The squares summed over tokens weight each output channel of gate/up when
-    factorising them (`output_weights`). Returns the hook handles.
+    factorising them (`output_weights`). Only the real positions of `real` count. Returns the hook handles.
     """
+    real = real if real is not None else RealTokens()
     seen: dict[str, torch.Tensor] = {}
     act = {"silu": torch.nn.functional.silu, "gelu": torch.nn.functional.gelu,
            "gelu_tanh": lambda z: torch.nn.functional.gelu(z, approximate="tanh")}[shape.activation]
 
     def keep(name):
         def hook(_m, _args, out):
-            seen[name] = out.detach()
+            seen[name] = real.rows(out.detach())  # (n, f)
         return hook
 
     def derivative(z):

@@ -12,7 +12,9 @@ from . import compare as comparelib
 from . import compress as pipeline
 from .errors import CompressError
 from .factorize import DEFAULT_DAMPING
+from .io import storage
 from .loading import load_model, load_weights, tokens
+from .model import fuse
 from .builtin import resolve
 from .strategies import DEFAULT_STRATEGY
 from .texts import read_lines, read_texts
@@ -51,7 +53,8 @@ def inspect(path: str, heads: int | None = None, kv_heads: int | None = None) ->
         "path": str(source.path), "format": "attncompress" if manifest else source.format, "family": shape.family,
         "model_type": (source.config or {}).get("model_type"), "shape": shape.__dict__.copy(),
         "parameters": evaluate.param_groups(weights), "block_matrix_parameters": evaluate.block_matrix_params(weights),
-        "dtypes": source.dtypes(), "layers": layers, "unused": walk.unused if walk else [],
+        "dtypes": source.dtypes(), "storage": manifest.get("dtype", "float32") if manifest else None,
+        "layers": layers, "unused": walk.unused if walk else [],
         "kv_bytes_per_token": evaluate.kv_bytes_per_token(shape, weights) if shape.is_decoder else None,
     }
 
@@ -61,6 +64,7 @@ def perplexity(path: str, texts: list[str], context: int = 512, stride: int | No
     """Perplexity of a decoder over the concatenated token stream of the text files."""
     text, described = read_texts(texts)
     loaded = load_model(resolve(path))
+    fuse(loaded.model)  # inference only: one product per shared input
     if not loaded.model.is_decoder:
         raise CompressError(f"{loaded.path}: perplexity needs a decoder; this {loaded.shape.family} model is an encoder")
     ids = tokens(loaded, text)
@@ -74,6 +78,7 @@ def embed(path: str, text: str, batch: int = 32) -> dict:
     """Mean-pooled sentence embeddings of an encoder, one sentence per line."""
     lines = read_lines(text)
     loaded = load_model(resolve(path))
+    fuse(loaded.model)
     if loaded.model.is_decoder:
         raise CompressError(f"{loaded.path}: embed needs an encoder; this {loaded.shape.family} model is a decoder")
     if loaded.tokenizer is None:
@@ -214,8 +219,11 @@ def _scatter_rows(t, n: int, hd: int, idx) -> torch.Tensor:
     return full.reshape((n * hd,) + tuple(t.shape[1:]))
 
 
-def expand(path: str, out: str, force: bool = False) -> dict:
-    """Multiply a compressed directory back into a dense model directory of the source family's layout."""
+def expand(path: str, out: str, force: bool = False, dtype: str | None = None) -> dict:
+    """Multiply a compressed directory back into a dense model directory of the source family's layout.
+
+    `dtype`: float format written (float32, bfloat16, float16); default the directory's own, float16 for int8.
+    """
     import dataclasses
     from . import arch
     from .loading import is_compressed
@@ -223,7 +231,12 @@ def expand(path: str, out: str, force: bool = False) -> dict:
     check_output(out, force)
     if not is_compressed(path):
         raise CompressError(f"{path}: not a directory written by attncompress compress; nothing to expand")
+    if dtype is not None and storage.check_dtype(dtype) == "int8":
+        raise CompressError(f"--dtype int8: expand writes the source family's float layout; choose float32, "
+                            "bfloat16 or float16 (or use the compressed directory, which can be int8)")
     shape, weights, source, _, manifest = load_weights(path)
+    dtype = dtype or storage.default_dtype(source, manifest)
+    dtype = "float16" if dtype == "int8" else dtype
     dense = densify(shape, weights)
     adapter = arch.ADAPTERS[shape.family]
     cfg_path = Path(path) / "source-config.json"
@@ -242,14 +255,15 @@ def expand(path: str, out: str, force: bool = False) -> dict:
         shape = dataclasses.replace(shape, o_bias=True, qkv_bias=True)
     tensors = arch.to_source_layout(adapter, shape, dense)
     with atomic_dir(out, force) as tmp:
-        save_tensors(tmp / "model.safetensors", tensors)
+        save_tensors(tmp / "model.safetensors", tensors, dtype)
         (tmp / "config.json").write_text(dumps(config), encoding="utf-8")
         tok = Path(path) / "tokenizer.json"
         if tok.is_file():
             (tmp / "tokenizer.json").write_bytes(tok.read_bytes())
             (tmp / "tokenizer_config.json").write_text(dumps({"tokenizer_class": "PreTrainedTokenizerFast"}),
                                                        encoding="utf-8")
-    return {"out": str(out), "tensors": len(tensors), "parameters": sum(t.numel() for t in tensors.values())}
+    return {"out": str(out), "tensors": len(tensors), "parameters": sum(t.numel() for t in tensors.values()),
+            "dtype": dtype}
 
 
 # -------------------------------------------------------------------------------------------- the whole job
@@ -259,24 +273,28 @@ def expand(path: str, out: str, force: bool = False) -> dict:
 BLENDS = {"text": (), "samples": (gen.SAMPLES,), "pydoc": ("corpus:pydoc-calibration",),
           "samples+pydoc": (gen.SAMPLES, "corpus:pydoc-calibration")}
 DEFAULT_BLEND = "samples"
+ENCODER_BLEND = "pydoc"  # an encoder writes no samples; general text of the bundled corpora instead
 RUN_MIX = 0.5  # weight of the next-token loss in run's tune; the rest is distillation from the source
 
 
 def run(path: str, out: str, *, keep: float, texts: list[str], eval_texts: list[str] | None = None,
-        strategy: str | None = None, sequential: bool = True, refit: bool = True, blend: str = DEFAULT_BLEND,
-        steps: int = 60, batch: int = 4, context: int = 128, lr: float = 1e-4, mix: float = RUN_MIX,
+        strategy: str | None = None, sequential: bool = True, refit: bool = True, blend: str | None = None,
+        steps: int = 60, batch: int | None = None, context: int = 128, lr: float = 1e-4, mix: float = RUN_MIX,
         decay: str = DEFAULT_DECAY, decay_coef: float = DEFAULT_DECAY_COEF, seed: int = 0,
         max_eval_tokens: int | None = 4096, force: bool = False, quiet: bool = False) -> dict:
     """Compress, tune and compare in one go; `out` gets `compressed/`, `tuned/` and `report/`.
 
-    The calibration and tuning text is `texts` plus the `blend` (a key of `BLENDS`); each `eval_texts` file is
-    scored on its own for the original, the compressed and the tuned model. The whole directory is written
-    atomically: an error or Ctrl-C leaves nothing behind.
+    The calibration and tuning text is `texts` plus the `blend` (a key of `BLENDS`; None: `DEFAULT_BLEND` for a
+    decoder, `ENCODER_BLEND` for an encoder, which cannot write samples); each `eval_texts` file is scored on its
+    own for the original, the compressed and the tuned model (an encoder's compressed model as
+    "compare_compressed"). The whole directory is written atomically: an error or Ctrl-C leaves nothing behind.
     """
     import sys
     from .io.write import atomic_dir, check_output
     from .progress import Timer
     from .report import write_compare
+    if blend is None:
+        blend = DEFAULT_BLEND if pipeline.open_model(path).shape.is_decoder else ENCODER_BLEND
     if blend not in BLENDS:
         raise CompressError(f"--blend: unknown value {blend!r}; expected one of {', '.join(BLENDS)}")
     check_output(out, force)
@@ -307,12 +325,17 @@ def run(path: str, out: str, *, keep: float, texts: list[str], eval_texts: list[
         say("3/3 compare the original with the tuned model, and the compressed model before tuning")
         scored = eval_texts or texts
         r = comparelib.compare(path, str(tmp / "tuned"), scored, max_tokens=max_eval_tokens, quiet=quiet)
-        before = comparelib.score_model(str(tmp / "compressed"), scored, max_tokens=max_eval_tokens, quiet=quiet)
-        for entry, b in zip(r["quality"]["per_text"], before):
-            entry["compressed"] = b["perplexity"][0]
+        rc = None
+        if r["quality"] and r["quality"]["kind"] == "embedding":
+            rc = comparelib.compare(path, str(tmp / "compressed"), scored, speed_runs=0, quiet=quiet)
+        elif r["quality"]:
+            before = comparelib.score_model(str(tmp / "compressed"), scored, max_tokens=max_eval_tokens, quiet=quiet)
+            for entry, b in zip(r["quality"]["per_text"], before):
+                entry["compressed"] = b["perplexity"][0]
         timer.lap("compare")
         r["run"] = {"blend": blend, "calibration": c.get("calibration"), "tune": {
             k: t[k] for k in ("steps", "steps_run", "heldout", "data", "warnings", "settings")},
             "seconds": timer.stages}
         write_compare(r, str(tmp / "report"), False)
-    return {"out": str(out), "compress": c, "tune": t, "compare": r, "seconds": timer.stages}
+    return {"out": str(out), "compress": c, "tune": t, "compare": r, "compare_compressed": rc,
+            "seconds": timer.stages}

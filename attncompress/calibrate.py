@@ -33,6 +33,22 @@ def _batches(n: int, batch: int = BATCH):
     return [slice(j, min(j + batch, n)) for j in range(0, n, batch)]
 
 
+def _runs(xs: torch.Tensor, mask: torch.Tensor | None):
+    """Per batch: (rows, positions, attention mask (b, 1, 1, s) or None, real-token mask (b, s) or None).
+
+    Padded sentences (mask given, longest first) run on their batch's longest sentence only, and padded keys
+    are never attended; blocks of the text stream (mask None) use every position.
+    """
+    for sl in _batches(xs.shape[0]):
+        if mask is None:
+            yield sl, slice(None), None, None
+            continue
+        m = mask[sl]
+        s = int(m.sum(1).max())
+        real = m[:, :s].bool()
+        yield sl, slice(0, s), real[:, None, None, :], real
+
+
 def _block(shape: ModelShape, w: dict[str, torch.Tensor], layer: int):
     """A runtime block that never asks for weight gradients."""
     blk = build_block(shape, w, layer).eval()
@@ -49,53 +65,61 @@ def embed(emb: Transformer, blocks: torch.Tensor) -> torch.Tensor:
 
 
 @torch.no_grad()
-def forward_layer(shape: ModelShape, w: dict[str, torch.Tensor], layer: int, xs: torch.Tensor) -> analysis.LayerStats:
-    """Run dense block `layer` over xs (n, s, d) in place and return its statistics (`analysis.stat_hooks`)."""
+def forward_layer(shape: ModelShape, w: dict[str, torch.Tensor], layer: int, xs: torch.Tensor,
+                  mask: torch.Tensor | None = None) -> analysis.LayerStats:
+    """Run dense block `layer` over xs (n, s, d) in place and return its statistics (`analysis.stat_hooks`).
+
+    `mask` (n, s): 1 at real tokens (padded sentences); the statistics count real tokens only.
+    """
     st = analysis.empty_stats(shape)
     blk = _block(shape, w, layer)
-    handles = analysis.stat_hooks(blk, st, shape)
+    real = analysis.RealTokens()
+    handles = analysis.stat_hooks(blk, st, shape, real)
     try:
-        for sl in _batches(xs.shape[0]):
+        for sl, pos, att, real.mask in _runs(xs, mask):
             # the block's output replaces its input: the next layer's input, and all the state carried over
-            xs[sl] = blk(xs[sl], mask=None, cache=None, layer=layer, start=0)
+            xs[sl, pos] = blk(xs[sl, pos], mask=att, cache=None, layer=layer, start=0)
     finally:
         for h in handles:
             h.remove()
     return st
 
 
-def loss_gradient(top: Transformer, xs: torch.Tensor, blocks: torch.Tensor, seed: int = 0
-                  ) -> tuple[torch.Tensor, int]:
+def loss_gradient(top: Transformer, xs: torch.Tensor, blocks: torch.Tensor, mask: torch.Tensor | None = None,
+                  seed: int = 0) -> tuple[torch.Tensor, int]:
     """∂S/∂(last block output) for every block, (n, s, d), and the number m of loss terms in S.
 
     `top` holds the model's final norm and output head (built without blocks); see `sensitivity` for S.
+    Padded positions get no gradient (nothing reads them).
     """
-    grad = torch.empty_like(xs)
+    grad = torch.zeros_like(xs)
     terms = 0
-    for sl in _batches(xs.shape[0]):
+    for sl, pos, _att, real in _runs(xs, mask):
         with torch.enable_grad():
-            x = xs[sl].detach().requires_grad_(True)
-            s, m = calibration_loss(top, x, blocks[sl], seed, sl.start)
-            (grad[sl],) = torch.autograd.grad(s, x)
+            x = xs[sl, pos].detach().requires_grad_(True)
+            s, m = calibration_loss(top, x, blocks[sl, pos], seed, sl.start, real)
+            (grad[sl, pos],) = torch.autograd.grad(s, x)
         terms += m
     return grad, terms
 
 
 def backward_layer(shape: ModelShape, w: dict[str, torch.Tensor], layer: int, xs_in: torch.Tensor,
-                   grad: torch.Tensor, terms: int) -> LayerSensitivity:
+                   grad: torch.Tensor, terms: int, mask: torch.Tensor | None = None) -> LayerSensitivity:
     """Back-propagate grad (n, s, d) through block `layer` from its input xs_in, in place: grad becomes ∂S/∂input.
 
-    Returns the layer's sensitivities (`sensitivity.LayerSensitivity`).
+    Returns the layer's sensitivities (`sensitivity.LayerSensitivity`); padded positions (`mask` 0) carry no
+    gradient, so they add nothing, and only real tokens are counted.
     """
-    sens = LayerSensitivity(positions=xs_in.shape[0] * xs_in.shape[1], terms=terms)
+    n = int(mask.sum()) if mask is not None else xs_in.shape[0] * xs_in.shape[1]
+    sens = LayerSensitivity(positions=n, terms=terms)
     blk = _block(shape, w, layer)
     handles = sensitivity_hooks(blk, sens)
     try:
-        for sl in _batches(xs_in.shape[0]):
+        for sl, pos, att, _real in _runs(xs_in, mask):
             with torch.enable_grad():
-                x = xs_in[sl].detach().requires_grad_(True)
-                y = blk(x, mask=None, cache=None, layer=layer, start=0)  # (b, s, d)
-                (grad[sl],) = torch.autograd.grad(y, x, grad[sl])
+                x = xs_in[sl, pos].detach().requires_grad_(True)
+                y = blk(x, mask=att, cache=None, layer=layer, start=0)  # (b, s, d)
+                (grad[sl, pos],) = torch.autograd.grad(y, x, grad[sl, pos])
     finally:
         for h in handles:
             h.remove()
@@ -133,14 +157,14 @@ class CutStats:
     dense_down: list[torch.Tensor] | None  # per batch (b·s, f) the dense path's down inputs, for the down refit
 
 
-def _capture(blk) -> tuple[dict[str, torch.Tensor], list]:
-    """Hooks keeping the block's attention, feed-forward and down inputs of the next forward, as (t, width)."""
+def _capture(blk, real: analysis.RealTokens) -> tuple[dict[str, torch.Tensor], list]:
+    """Hooks keeping the block's attention, feed-forward and down inputs of the next forward at `real`'s tokens, (t, width)."""
     got: dict[str, torch.Tensor] = {}
 
     def keep(name):
         def hook(_m, args):
             # a copy: the input may be a view of the hidden states that the caller overwrites with the output
-            got[name] = args[0].reshape(-1, args[0].shape[-1]).clone()
+            got[name] = real.rows(args[0]).clone()
         return hook
     return got, [blk.attn.register_forward_pre_hook(keep("attn")), blk.ff.register_forward_pre_hook(keep("ff")),
                  blk.ff.down.register_forward_pre_hook(keep("down"))]
@@ -149,27 +173,29 @@ def _capture(blk) -> tuple[dict[str, torch.Tensor], list]:
 class CutPath:
     """The dense and the cut model's hidden states, advanced one layer at a time (see the module note)."""
 
-    def __init__(self, xs: torch.Tensor, refit: bool):
+    def __init__(self, xs: torch.Tensor, refit: bool, mask: torch.Tensor | None = None):
         self.dense = xs.clone() if refit else None  # (n, s, d) the dense path, needed only for the cross Grams
         self.cut = xs  # (n, s, d) hidden states of the model cut so far
         self.refit = refit
+        self.mask = mask  # (n, s) real tokens of padded sentences, or None
 
     @torch.no_grad()
     def stats(self, shape: ModelShape, w: dict[str, torch.Tensor], layer: int) -> CutStats:
         """Layer `layer`'s Gram matrices on the cut path; with refit also the cross Grams, advancing the dense path."""
         st = analysis.empty_stats(shape)
+        real = analysis.RealTokens()
         cut_blk = _block(shape, w, layer)
-        handles = analysis.stat_hooks(cut_blk, st, shape)
-        got_c, cap_c = _capture(cut_blk)
+        handles = analysis.stat_hooks(cut_blk, st, shape, real)
+        got_c, cap_c = _capture(cut_blk, real)
         dense_blk = _block(shape, w, layer)  # a second copy: only the cut path's run feeds the statistics
-        got_d, cap_d = _capture(dense_blk)
+        got_d, cap_d = _capture(dense_blk, real)
         attn_c = ff_c = 0
         downs = []
         try:
-            for sl in _batches(self.cut.shape[0]):
-                cut_blk(self.cut[sl], mask=None, cache=None, layer=layer, start=0)
+            for sl, pos, att, real.mask in _runs(self.cut, self.mask):
+                cut_blk(self.cut[sl, pos], mask=att, cache=None, layer=layer, start=0)
                 if self.refit:
-                    self.dense[sl] = dense_blk(self.dense[sl], mask=None, cache=None, layer=layer, start=0)
+                    self.dense[sl, pos] = dense_blk(self.dense[sl, pos], mask=att, cache=None, layer=layer, start=0)
                     attn_c = attn_c + got_c["attn"].double().T @ got_d["attn"].double()  # (t, d)ᵀ (t, d) → (d, d)
                     ff_c = ff_c + got_c["ff"].double().T @ got_d["ff"].double()
                     downs.append(got_d["down"])  # (b·s, f)
@@ -185,11 +211,12 @@ class CutPath:
                    ) -> tuple[torch.Tensor, torch.Tensor]:
         """G' and C of the down matrix's inputs: the cut layer (before its down refit) against the dense one."""
         blk = _block(shape, w_cut, layer)
-        got, cap = _capture(blk)
+        real = analysis.RealTokens()
+        got, cap = _capture(blk, real)
         gram = cross = 0
         try:
-            for sl, dense_down in zip(_batches(self.cut.shape[0]), cs.dense_down):
-                blk(self.cut[sl], mask=None, cache=None, layer=layer, start=0)
+            for (sl, pos, att, real.mask), dense_down in zip(_runs(self.cut, self.mask), cs.dense_down):
+                blk(self.cut[sl, pos], mask=att, cache=None, layer=layer, start=0)
                 xc = got["down"].double()  # (b·s, f)
                 gram = gram + xc.T @ xc
                 cross = cross + xc.T @ dense_down.double()
@@ -202,8 +229,8 @@ class CutPath:
     def advance(self, shape: ModelShape, w_cut: dict[str, torch.Tensor], layer: int) -> None:
         """Run the finished cut layer over the cut path: its output is the next layer's input."""
         blk = _block(shape, w_cut, layer)
-        for sl in _batches(self.cut.shape[0]):
-            self.cut[sl] = blk(self.cut[sl], mask=None, cache=None, layer=layer, start=0)
+        for sl, pos, att, _real in _runs(self.cut, self.mask):
+            self.cut[sl, pos] = blk(self.cut[sl, pos], mask=att, cache=None, layer=layer, start=0)
 
 
 def refit_layer(shape: ModelShape, w: dict[str, torch.Tensor], new: dict[str, torch.Tensor], layer: int,

@@ -5,15 +5,18 @@ import json
 import os
 import sys
 
-# Spinning OpenMP threads slow everything several-fold when another process shares the cores; waiting
-# passively costs nothing measurable on an idle machine. Set before torch starts its thread pool.
-os.environ.setdefault("OMP_WAIT_POLICY", "PASSIVE")
+from . import threads as threadlib
+
+# Threads and OpenMP waiting from the machine's load (or --threads / ATTNCOMPRESS_THREADS), decided before
+# torch starts its thread pool: spinning halves a decode step on free cores and wrecks it on shared ones.
+threadlib.configure(sys.argv)
 
 import click  # noqa: E402
 
 from . import api, compress as pipeline, tune as tunelib
 from .errors import CompressError
 from .factorize import DEFAULT_DAMPING
+from .io.storage import DTYPES
 from .io.write import DEFAULT_SHARD_SIZE
 from .strategies import DEFAULT_STRATEGY, STRATEGIES, WEIGHTS_ONLY_STRATEGY
 
@@ -44,6 +47,12 @@ def _force_opt(help: str = "Replace --out if it exists."):
 
 def _json_opt(help: str = "Print the report as JSON."):
     return click.option("--json", "as_json", is_flag=True, help=help)
+
+
+def _dtype_opt(default: str):
+    return click.option("--dtype", type=click.Choice(list(DTYPES)),
+                        help=f"Number format of the weights written (int8: per-output-channel weight-only; the "
+                             f"runtime widens to float32 at load). [default: {default}]")
 
 
 def _texts_opt(help: str, required: bool = False, name: str = "--text", dest: str = "texts"):
@@ -199,9 +208,10 @@ def plan(path, keep, strategy, texts, damping, out, as_json):
 @click.option("--shard-size", default=DEFAULT_SHARD_SIZE, show_default=True,
               help="Largest safetensors file to write; a bigger model is split into shards with an index.")
 @_cut_options
+@_dtype_opt("the source's float width; 16-bit for a quantised GGUF")
 @_json_opt()
 def compress(path, keep, plan_file, strategy, texts, weights_only, damping, out, force, calib_blocks, calib_context, shard_size,
-             sequential, refit, as_json):
+             sequential, refit, dtype, as_json):
     """Cut ranks under a budget and write a smaller checkpoint."""
     if weights_only:
         click.echo("warning: --weights-only truncates by weights alone; on real small language models this can "
@@ -210,7 +220,7 @@ def compress(path, keep, plan_file, strategy, texts, weights_only, damping, out,
         raise click.UsageError("give --keep or --plan, not both")
     r = _run(api.compress, path, out, keep=keep, plan_file=plan_file, strategy=strategy, texts=list(texts) or None,
              weights_only=weights_only, damping=damping, force=force, n_blocks=calib_blocks, context=calib_context,
-             shard_size=shard_size, sequential=sequential, refit=refit)
+             shard_size=shard_size, sequential=sequential, refit=refit, dtype=dtype)
     from .report import plan_text
     _emit(r, as_json, plan_text(r["plan"]) + f"\nwrote {r['out']} ({r['method']['factors']}) in "
           + ", ".join(f"{k} {v:.1f}s" for k, v in r["seconds"].items()))
@@ -220,9 +230,11 @@ def compress(path, keep, plan_file, strategy, texts, weights_only, damping, out,
 @click.argument("path")
 @_out_opt("Dense model directory to write.", required=True)
 @_force_opt()
-def expand(path, out, force):
+@click.option("--dtype", type=click.Choice([d for d in DTYPES if d != "int8"]),
+              help="Float format of the weights written. [default: the directory's; float16 for an int8 one]")
+def expand(path, out, force, dtype):
     """Multiply a compressed directory's factors back into a dense model directory of the source layout."""
-    r = _run(api.expand, path, out, force)
+    r = _run(api.expand, path, out, force, dtype)
     click.echo(f"wrote {r['out']}: {r['tensors']} tensors, {r['parameters']:,} parameters")
 
 
@@ -231,8 +243,9 @@ def expand(path, out, force):
 @_texts_opt("Training text file (repeatable).", required=True)
 @_out_opt("Tuned directory to write.", required=True)
 @click.option("--steps", default=100, show_default=True, help="Optimiser steps.")
-@click.option("--batch", default=4, show_default=True, help="Blocks per step, over all processes.")
-@click.option("--context", default=128, show_default=True, help="Tokens per block.")
+@click.option("--batch", type=int, help="Blocks (encoders: sentences) per step, over all processes. "
+              f"[default: 4 blocks, {tunelib.DEFAULT_SENTENCE_BATCH} sentences]")
+@click.option("--context", default=128, show_default=True, help="Tokens per block (encoders: most tokens per sentence).")
 @click.option("--lr", default=1e-4, show_default=True, help="Peak learning rate (warm-up, then cosine).")
 @click.option("--seed", default=0, show_default=True, help="Seed of the data order.")
 @click.option("--decay", type=click.Choice(list(tunelib.DECAYS)), default=tunelib.DEFAULT_DECAY, show_default=True,
@@ -252,6 +265,10 @@ def expand(path, out, force):
 @click.option("--resume", is_flag=True, help="Continue from the checkpoint of an interrupted run.")
 @click.option("--train-norms", is_flag=True, help="Also train the norm weights.")
 @click.option("--train-dense", is_flag=True, help="Also train the feed-forward matrices the plan left dense.")
+@click.option("--embed-loss", type=click.Choice(list(tunelib.EMBED_LOSSES)), default=tunelib.DEFAULT_EMBED_LOSS,
+              show_default=True, help="Encoders: 1 − cosine, or squared error, of the normalised pooled embeddings.")
+@click.option("--hidden-weight", default=0.0, show_default=True,
+              help="Encoders: weight of the last hidden states' relative squared error against the teacher's.")
 @click.option("--heldout", default=tunelib.DEFAULT_HELDOUT, show_default=True,
               help="Fraction of the text's blocks held out; the step of the lowest held-out loss is written (0: off).")
 @click.option("--eval-every", default=tunelib.DEFAULT_EVAL_EVERY, show_default=True,
@@ -259,11 +276,13 @@ def expand(path, out, force):
 @click.option("--patience", default=tunelib.DEFAULT_PATIENCE, show_default=True,
               help="Stop when the held-out loss rose at this many evaluations in a row.")
 @_force_opt("Replace --out, and a stale checkpoint, if they exist.")
+@_dtype_opt("the input directory's; training is in float32 either way")
 @click.option("--quiet", is_flag=True, help="No progress line.")
 @_json_opt()
 def tune(path, texts, out, steps, batch, context, lr, seed, decay, decay_coef, penalty_every, teacher, temperature,
-         mix, topk, eval_texts, eval_tokens, save_every, resume, train_norms, train_dense, heldout, eval_every, patience,
-         force, quiet, as_json):
+         mix, topk, eval_texts, eval_tokens, save_every, resume, train_norms, train_dense, embed_loss, hidden_weight,
+         heldout, eval_every, patience,
+         force, dtype, quiet, as_json):
     """Fine-tune a compressed directory's factors on text (distilling from the source model); also under torchrun."""
     def go():
         try:
@@ -271,9 +290,9 @@ def tune(path, texts, out, steps, batch, context, lr, seed, decay, decay_coef, p
                                 decay=decay, decay_coef=decay_coef, penalty_every=penalty_every,
                                 temperature=temperature, mix=mix, teacher=teacher, topk=topk,
                                 eval_texts=list(eval_texts), eval_tokens=eval_tokens, save_every=save_every,
-                                resume=resume, train_norms=train_norms,
-                                train_dense=train_dense, heldout=heldout, eval_every=eval_every, patience=patience,
-                                force=force, quiet=quiet)
+                                resume=resume, train_norms=train_norms, train_dense=train_dense,
+                                embed_loss=embed_loss, hidden_weight=hidden_weight, heldout=heldout,
+                                eval_every=eval_every, patience=patience, force=force, dtype=dtype, quiet=quiet)
         except tunelib.TuneInterrupted as e:
             click.echo(str(e), err=True)
             sys.exit(130)
@@ -288,7 +307,13 @@ def tune(path, texts, out, steps, batch, context, lr, seed, decay, decay_coef, p
     lines += tune_lines(r)
     before, after = r["eval"]["before"] or {}, r["eval"]["after"] or {}
     for name in after:
-        lines.append(f"held-out {name}: perplexity {before[name]['perplexity']:.3f} -> {after[name]['perplexity']:.3f}")
+        b, a = before[name], after[name]
+        if "perplexity" in a:
+            lines.append(f"held-out {name}: perplexity {b['perplexity']:.3f} -> {a['perplexity']:.3f}")
+        else:
+            lines.append(f"held-out {name} ({a['sentences']} sentences) against the teacher: mean cosine "
+                         f"{b['cosine']['mean']:.4f} -> {a['cosine']['mean']:.4f}, top-1 neighbour unchanged "
+                         f"{100 * b['neighbour_agreement']:.1f}% -> {100 * a['neighbour_agreement']:.1f}%")
     lines.append(f"wrote {r['out']}")
     _emit(r, as_json, "\n".join(lines))
 
@@ -302,8 +327,9 @@ def tune(path, texts, out, steps, batch, context, lr, seed, decay, decay_coef, p
               "[default: --context]")
 @click.option("--max-tokens", type=int, help="Score only the first N tokens of the text.")
 @click.option("--runs", default=5, show_default=True, help="Timed runs per speed figure (median); 0 skips speed.")
-@click.option("--threads", type=int, help="Threads for the speed measurement [default: torch's]; on cores shared "
-              "with other jobs set OMP_WAIT_POLICY=PASSIVE too.")
+@click.option("--threads", help="auto, N, or N:active / N:passive: threads and OpenMP waiting [default: auto, from the "
+              "load average against the cores; also ATTNCOMPRESS_THREADS]; on a machine shared with other heavy "
+              "jobs use 1 or N:passive.")
 @_json_opt("Print the report as JSON (schema attncompress.compare/1).")
 @_out_opt("Write compare.json, report.md and PNG plots to this directory.")
 @_force_opt()
@@ -311,8 +337,10 @@ def tune(path, texts, out, steps, batch, context, lr, seed, decay, decay_coef, p
 def compare(a, b, texts, context, stride, max_tokens, runs, threads, as_json, out, force, quiet):
     """Model A against model B: size, KV cache, perplexity or embedding agreement, and speed side by side."""
     from .report import compare_text, write_compare
+    if threads is not None:
+        _run(threadlib.parse_spec, threads)
     r = _run(api.compare, a, b, list(texts) or None, out=out, force=force, context=context, stride=stride,
-             max_tokens=max_tokens, speed_runs=runs, threads=threads, quiet=quiet)
+             max_tokens=max_tokens, speed_runs=runs, quiet=quiet)
     note = _run(write_compare, r, out, force) if out else None
     _emit(r, as_json, compare_text(r) + (f"\nwrote {out}/report.md and {out}/compare.json; {note}" if out else ""))
 
@@ -325,9 +353,10 @@ def compare(a, b, texts, context, stride, max_tokens, runs, threads, as_json, ou
             dest="eval_texts")
 @_strategy_opt
 @_cut_options
-@click.option("--blend", type=click.Choice(list(api.BLENDS)), default=api.DEFAULT_BLEND, show_default=True,
+@click.option("--blend", type=click.Choice(list(api.BLENDS)), default=None,
               help="General text added to --text for calibration and tuning: samples (text the source model writes, "
-                   "corpus:samples), pydoc (corpus:pydoc-calibration), both, or none (text).")
+                   "corpus:samples), pydoc (corpus:pydoc-calibration), both, or none (text). [default: "
+                   f"{api.DEFAULT_BLEND} for a decoder, {api.ENCODER_BLEND} for an encoder]")
 @click.option("--steps", default=60, show_default=True, help="Most tuning steps (the held-out loss picks the step).")
 @click.option("--mix", default=api.RUN_MIX, show_default=True,
               help="Weight of the next-token loss in the tune; 1 − mix goes to distillation from the source.")
@@ -344,9 +373,15 @@ def run(path, keep, texts, eval_texts, strategy, sequential, refit, blend, steps
     r = _run(api.run, path, out, keep=keep, texts=list(texts), eval_texts=list(eval_texts) or None, strategy=strategy,
              sequential=sequential, refit=refit, blend=blend, steps=steps, mix=mix, decay=decay,
              max_eval_tokens=eval_tokens or None, force=force)
+    before = []
+    if r["compare_compressed"]:
+        q = r["compare_compressed"]["quality"]
+        before = [f"before the tune (compressed/ against A): mean cosine {q['cosine']['mean']:.4f}, p5 "
+                  f"{q['cosine']['p5']:.4f}, min {q['cosine']['min']:.4f}, top-1 neighbour unchanged "
+                  f"{100 * q['neighbour_agreement']:.1f}%, Spearman {q['spearman']:.4f}"]
     times = ", ".join(f"{k} {v:.0f}s" for k, v in r["seconds"].items())
     _emit(r["compare"], as_json, "\n".join(tune_lines(r["tune"]) + r["tune"]["warnings"] + [
-        compare_text(r["compare"]), f"time: {times}", f"wrote {out}/compressed, {out}/tuned and {out}/report"]))
+        compare_text(r["compare"])] + before + [f"time: {times}", f"wrote {out}/compressed, {out}/tuned and {out}/report"]))
 
 
 if __name__ == "__main__":

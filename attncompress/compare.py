@@ -9,6 +9,7 @@ which bounds a decode step from below: every weight is read once per token.
 from __future__ import annotations
 
 import math
+import os
 import statistics
 from contextlib import contextmanager
 from dataclasses import dataclass
@@ -17,11 +18,14 @@ import torch
 import torch.nn.functional as F
 
 from . import evaluate
+from . import threads as threadlib
+from .io import storage
 from .errors import CompressError
 from .loading import Loaded, load_weights
-from .model import KVCache, Transformer, build
+from .model import KVCache, Transformer, build, fuse
 from .builtin import resolve
 from .progress import seconds
+from .evaluate import embedding_agreement
 from .texts import read_lines, read_texts
 
 SCHEMA = "attncompress.compare/1"
@@ -42,7 +46,7 @@ class _Model:
 def _open(path: str, label: str) -> _Model:
     """Load a model the way `load_model` does, counting from the canonical weights before they are dropped."""
     shape, weights, source, walk, manifest = load_weights(resolve(path))
-    model = build(shape, weights)
+    model = fuse(build(shape, weights))  # the inference path: one product per shared input
     model.eval()
     loaded = Loaded(model, shape, source.tokenizer(), source, walk, manifest)
     return _Model(loaded, model_facts(loaded, weights), label)
@@ -65,7 +69,7 @@ def model_facts(ld: Loaded, weights: dict) -> dict:
         "parameters": {"total": groups["total"], "block_matrices": evaluate.block_matrix_params(weights),
                        "groups": groups},
         "disk": {"bytes": sum(f["bytes"] for f in files), "files": files, "quantised": quantised,
-                 "dtypes": ld.source.dtypes(),
+                 "dtypes": ld.source.dtypes(), "format": _storage_of(ld),
                  "note": ("quantised on disk; dequantised to float32 to run, so disk bytes understate memory"
                           if quantised else None)},
         "runtime_bytes": sum(p.numel() * p.element_size() for p in ld.model.parameters()),
@@ -74,6 +78,15 @@ def model_facts(ld: Loaded, weights: dict) -> dict:
                                             "layers": plan.get("layers"), "full": _full_ranks(ld.shape)},
         "method": (ld.manifest or {}).get("method"),
     }
+
+
+def _storage_of(ld: Loaded) -> str:
+    """The storage format of a model's weights: a compressed directory's `dtype`, else its matrices' float width
+    ("quantised" for a GGUF below 16 bits)."""
+    if ld.manifest is not None:
+        return storage.default_dtype(None, ld.manifest)
+    widths = [ld.source.dtype(n) for n in ld.source.names() if len(ld.source.shape(n)) == 2]
+    return storage.source_width(widths) if all(w in ("F64", "F32", "BF16", "F16") for w in widths) else "quantised"
 
 
 def _full_ranks(shape) -> dict:
@@ -151,54 +164,59 @@ def perplexities(a: _Model, b: _Model, texts: list[str], context: int, stride: i
                           "b": p["perplexity"][1], "ratio": p["perplexity"][1] / p["perplexity"][0]} for p in per]}
 
 
-def embedding_agreement(ea: torch.Tensor, eb: torch.Tensor) -> dict:
-    """Cosine of the two models' embeddings of each line, and how often the top-1 neighbour is unchanged.
-
-    Args:
-        ea, eb: (n_lines, d_a), (n_lines, d_b) mean-pooled embeddings of the same lines (d_a == d_b).
-    Returns:
-        {"cosine": {"mean", "p5", "min"}, "neighbour_agreement"}: cosine per line of ea[i] and eb[i];
-        neighbour_agreement is the fraction of lines whose most similar other line (by cosine) is the same
-        under both models. Example: identical embeddings → cosine 1, agreement 1.
-    Raises:
-        CompressError: fewer than 2 lines.
-    """
-    n = ea.shape[0]
-    if n < 2:
-        raise CompressError(f"embedding agreement needs at least 2 lines of text, got {n}; give more lines")
-    a, b = F.normalize(ea.double(), dim=1), F.normalize(eb.double(), dim=1)  # (n, d), unit rows
-    cos = (a * b).sum(1)  # (n,)
-    sa, sb = a @ a.T, b @ b.T  # (n, d) @ (d, n) → (n, n) similarities within each model
-    eye = torch.eye(n, dtype=torch.bool)
-    sa, sb = sa.masked_fill(eye, -math.inf), sb.masked_fill(eye, -math.inf)  # a line is not its own neighbour
-    agree = (sa.argmax(1) == sb.argmax(1)).double().mean()
-    return {"cosine": {"mean": float(cos.mean()), "p5": float(torch.quantile(cos, 0.05)), "min": float(cos.min())},
-            "neighbour_agreement": float(agree)}
+def format_effect(a: _Model, b: _Model, texts: list[str], context: int, stride: int | None,
+                  max_tokens: int | None, quiet: bool) -> dict | None:
+    """What B's storage format alone does to perplexity, measured on A: A in float32 against A rounded to B's
+    format (the rounding `io.storage` applies when writing). None when B is stored in float32."""
+    fmt = b.facts["disk"]["format"]
+    if fmt in ("float32", "quantised"):
+        return None
+    ids, _ = _same_tokens(a, b, read_texts(texts)[0])
+    ids = ids[:max_tokens] if max_tokens else ids
+    ctx = min(context, a.loaded.shape.max_positions or context)
+    shape, weights, *_ = load_weights(resolve(a.loaded.path))
+    stored = storage.encode_all(weights, fmt)
+    rounded = fuse(build(shape, storage.decode(list(stored), stored.__getitem__))).eval()
+    del weights, stored
+    p32 = evaluate.perplexity(a.loaded.model, ids, context=ctx, stride=stride, quiet=quiet, label="perplexity A")
+    pr = evaluate.perplexity(rounded, ids, context=ctx, stride=stride, quiet=quiet, label=f"perplexity A as {fmt}")
+    return {"format": fmt, "measured_on": "a", "float32": p32["perplexity"], "rounded": pr["perplexity"],
+            "ratio": pr["perplexity"] / p32["perplexity"], "tokens": p32["tokens"]}
 
 
-def _lines_of(texts: list[str] | None, lines: list[str] | None) -> tuple[list[str], list[dict]]:
-    """Sentences for an encoder: the given lines, else every non-empty line of the text files."""
+def _line_sets(texts: list[str] | None, lines: list[str] | None) -> tuple[list[tuple[str, list[str]]], list[dict]]:
+    """Sentences for an encoder, per text: (name, lines) for each text file (every non-empty line), or the given lines."""
     if lines is not None:
-        return [ln for ln in lines if ln.strip()], []
-    out = []
-    for t in texts:
-        out.extend(read_lines(t))
+        return [("lines", [ln for ln in lines if ln.strip()])], []
     _, described = read_texts(texts)
-    return out, described
+    return [(d["name"], read_lines(t)) for t, d in zip(texts, described)], described
 
 
-def embeddings(a: _Model, b: _Model, sentences: list[str], described: list[dict]) -> dict:
-    """Agreement of two encoders' mean-pooled embeddings of the same sentences."""
-    joined = "\n".join(sentences)
-    _, tok_note = _same_tokens(a, b, joined)
+def _agreement(ea: torch.Tensor, eb: torch.Tensor) -> dict:
+    """`evaluate.embedding_agreement` without the per-sentence list (kept once, on the whole comparison)."""
+    out = embedding_agreement(ea, eb)
+    out.pop("cosines")
+    return out
+
+
+def embeddings(a: _Model, b: _Model, sets: list[tuple[str, list[str]]], described: list[dict]) -> dict:
+    """Agreement of two encoders' mean-pooled embeddings of the same sentences, over all and per text."""
+    sentences = [ln for _, group in sets for ln in group]
+    _, tok_note = _same_tokens(a, b, "\n".join(sentences))
     tok = a.loaded.tokenizer or b.loaded.tokenizer
     ea = evaluate.embed(a.loaded.model, tok, sentences)
     eb = evaluate.embed(b.loaded.model, tok, sentences)
     if ea.shape[1] != eb.shape[1]:
         raise CompressError(f"{a.loaded.path} and {b.loaded.path}: embedding widths differ "
                             f"({ea.shape[1]} vs {eb.shape[1]}); compare a model with its own compressed version")
+    per_text, at = [], 0
+    for name, group in sets:
+        if len(sets) > 1 and len(group) >= 2:  # neighbours within one text: a search index of that kind
+            per_text.append({"name": name, "lines": len(group), **_agreement(ea[at:at + len(group)],
+                                                                            eb[at:at + len(group)])})
+        at += len(group)
     return {"kind": "embedding", "texts": described, "tokenizer": tok_note, "lines": len(sentences),
-            **embedding_agreement(ea, eb)}
+            **embedding_agreement(ea, eb), "per_text": per_text}
 
 
 # ----------------------------------------------------------------------------------------------- speed
@@ -318,7 +336,8 @@ def speed(a: _Model, b: _Model, runs: int = RUNS, threads: int | None = None,
     """The speed section of the comparison (see `compare` for the keys)."""
     ma, mb = a.loaded.model, b.loaded.model
     with _threads(threads) as n_threads:
-        out = {"threads": n_threads, "runs": runs}
+        # how the threads were chosen, and the load the timings ran under
+        out = {"threads": n_threads, "runs": runs, "thread_choice": threadlib.current().to_json()}
         if ma.is_decoder:
             buf = torch.ones(256 << 18) if bandwidth else None  # 256 MB of float32, far above any cache
             probe = (lambda: measure_bandwidth(runs=3, buffer=buf)) if bandwidth else None
@@ -336,6 +355,7 @@ def speed(a: _Model, b: _Model, runs: int = RUNS, threads: int | None = None,
                     dec[f"{side}_limit_ms"] = nbytes / bw * 1e3
                     dec[f"{side}_over_limit"] = dec[f"{side}_ms"] / dec[f"{side}_limit_ms"]
                 dec["limit_speedup"] = dec["a_bytes"] / dec["b_bytes"]
+            dec["a_tokens_per_s"], dec["b_tokens_per_s"] = 1e3 / dec["a_ms"], 1e3 / dec["b_ms"]  # generation rate
             out["decode"] = dec
         else:
             tok = a.loaded.tokenizer or b.loaded.tokenizer
@@ -348,7 +368,11 @@ def speed(a: _Model, b: _Model, runs: int = RUNS, threads: int | None = None,
                 ids = torch.randint(0, min(ma.shape.vocab_size, mb.shape.vocab_size), (BATCH_LINES, s), generator=g)
                 mask = torch.ones_like(ids)
             t = time_encoders([ma, mb], ids, mask, runs=runs)
-            out["batch"] = {"sentences": ids.shape[0], "tokens": int(mask.sum()), **_side(t["batch"])}
+            side = _side(t["batch"])
+            out["batch"] = {"sentences": ids.shape[0], "tokens": int(mask.sum()), **side,
+                            "a_sentences_s": ids.shape[0] / side["a_ms"] * 1e3,
+                            "b_sentences_s": ids.shape[0] / side["b_ms"] * 1e3}
+        out["load_average_after"] = round(os.getloadavg()[0], 2)
     return out
 
 
@@ -379,7 +403,8 @@ def compare(a: str, b: str, texts: list[str] | None = None, lines: list[str] | N
           other, total}} (floating-point tensors of the canonical weights; block matrices are the q, k, v, o and
           feed-forward weights or factors, no biases),
           "disk": {"bytes" (sum of the weight files), "files": [{"name", "bytes"}], "quantised" (bool: a
-          quantised GGUF), "dtypes": {stored dtype: tensor count}, "note" (str or null)},
+          quantised GGUF), "dtypes": {stored dtype: tensor count}, "format" (float32 / bfloat16 / float16 /
+          int8 / quantised), "note" (str or null)},
           "runtime_bytes" (float32 parameters in memory), "kv_bytes_per_token" (int; null for encoders),
           "plan" ({"strategy", "keep", "layers": [{"layer", "qk", "vo", "ff": {kind: rank|null}, "qk_pairs"}]}
           from the manifest, and "full": {kind: most units} (qk in rotary pairs or rank); null for a model
@@ -391,14 +416,22 @@ def compare(a: str, b: str, texts: list[str] | None = None, lines: list[str] | N
           "per_text": [{"name", "tokens", "a", "b", "ratio"}] (each text scored on its own, its first
           `max_tokens` tokens), "a", "b" (perplexities over all scored tokens of all texts), "nll_a", "nll_b"
           (nats per token), "ratio" (b / a)}; encoders: {"kind": "embedding",
-          "texts", "tokenizer", "lines", "cosine": {"mean", "p5", "min"}, "neighbour_agreement"}.
-        - "speed": null when skipped; else {"threads", "runs"} and for decoders
+          "texts", "tokenizer", "lines", "cosine": {"mean", "p5", "min"}, "neighbour_agreement", "spearman",
+          "cosines" (per line), "per_text": [{"name", "lines", "cosine", "neighbour_agreement", "spearman"}] (one
+          per text file, neighbours within that file; empty for one file)} (see `evaluate.embedding_agreement`).
+        - "format_effect": null unless decoders with text and B stored narrower than float32; else
+          {"format" (B's), "measured_on": "a", "float32", "rounded" (perplexities of A as it runs and of A
+          rounded to B's format), "ratio" (rounded / float32), "tokens"}.
+        - "speed": null when skipped; else {"threads", "runs", "thread_choice": {"threads", "wait_policy",
+          "reason", "load_average", "cores"} (see `threads.decide`), "load_average_after"} and for decoders
           "prompt": {"tokens", "a_ms", "b_ms", "speedup", "a_runs_ms", "b_runs_ms"} (prefill of 1×tokens,
           last-position logits), "decode": {"cached_tokens", "tokens_per_run", "a_ms", "b_ms" (per token),
           "speedup", "a_runs_ms", "b_runs_ms", "a_bytes", "b_bytes" (bytes read per step), "a_limit_ms",
-          "b_limit_ms" (bytes / bandwidth), "a_over_limit", "b_over_limit" (time / limit), "limit_speedup"},
+          "b_limit_ms" (bytes / bandwidth), "a_over_limit", "b_over_limit" (time / limit), "limit_speedup",
+          "a_tokens_per_s", "b_tokens_per_s" (generation rate: 1 / decode time)},
           "bandwidth_gb_s" (measured streaming read, 1e9 bytes/s); for encoders "batch": {"sentences", "tokens",
-          "a_ms", "b_ms", "speedup", "a_runs_ms", "b_runs_ms"}. Every "speedup" is time of A / time of B.
+          "a_ms", "b_ms", "speedup", "a_runs_ms", "b_runs_ms", "a_sentences_s", "b_sentences_s"} (a batch of
+          32 sentences of the text, repeated when it has fewer). Every "speedup" is time of A / time of B.
 
     Raises:
         CompressError: unreadable models; a decoder against an encoder; different vocabularies or tokenizers
@@ -419,15 +452,17 @@ def compare(a: str, b: str, texts: list[str] | None = None, lines: list[str] | N
                    "disk_bytes": _ratio(fb["disk"]["bytes"], fa["disk"]["bytes"]),
                    "runtime_bytes": _ratio(fb["runtime_bytes"], fa["runtime_bytes"]),
                    "kv_bytes_per_token": _ratio(fb["kv_bytes_per_token"], fa["kv_bytes_per_token"])},
-        "quality": None, "speed": None,
+        "quality": None, "format_effect": None, "speed": None,
     }
     sentences = None
     if ma.loaded.model.is_decoder:
         if texts:
             report["quality"] = perplexities(ma, mb, list(texts), context, stride, max_tokens, quiet)
+            report["format_effect"] = format_effect(ma, mb, list(texts), context, stride, max_tokens, quiet)
     elif texts or lines:
-        sentences, described = _lines_of(list(texts) if texts else None, lines)
-        report["quality"] = embeddings(ma, mb, sentences, described)
+        sets, described = _line_sets(list(texts) if texts else None, lines)
+        report["quality"] = embeddings(ma, mb, sets, described)
+        sentences = [ln for _, group in sets for ln in group]
     if speed_runs:
         report["speed"] = speed(ma, mb, runs=speed_runs, threads=threads, sentences=sentences)
     return report

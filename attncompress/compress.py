@@ -19,10 +19,12 @@ import torch
 from . import analysis, arch, calibrate, factorize as fz, plan as planlib, strategies
 from .loading import Loaded, is_compressed, tokens
 from .io.read import open_source
+from .io import storage
 from .io.write import DEFAULT_SHARD_SIZE
 from .model import build
 from .builtin import resolve
 from .progress import Progress, Timer
+from .evaluate import sentence_batch
 from .texts import read_texts, token_blocks
 from .errors import CompressError
 from .factorize import DEFAULT_DAMPING
@@ -167,7 +169,7 @@ class Analysed:
 
     `loaded.model` is None: the layers were run one at a time. `scratch`, when set, holds each layer's
     calibration Gram matrices (`layer-{i}.safetensors`) and sensitivities (`sens-{i}.safetensors`) for the
-    factorise pass; `blocks` are the calibration token blocks (n_blocks, context).
+    factorise pass; `calib` is the calibration input (token blocks, or padded sentences with their mask).
     """
     loaded: Loaded
     spectra: list[dict]
@@ -175,7 +177,7 @@ class Analysed:
     timer: Timer
     damping: float = DEFAULT_DAMPING
     scratch: Path | None = None
-    blocks: torch.Tensor | None = None
+    calib: Calibration | None = None
     priced: bool = False  # spectra in loss units (sensitivities measured)
 
 
@@ -205,9 +207,30 @@ def _ends(loaded: Loaded, prefixes: tuple[str, ...]):
     return build(loaded.shape, w, blocks=False).requires_grad_(False)
 
 
-def _calibration_blocks(loaded, texts: list[str], context: int, n_blocks: int, option: str = "--calib-context"):
-    """Token blocks (n_blocks, context) of the calibration texts, and their description for the manifest."""
+@dataclass
+class Calibration:
+    """The calibration input: token ids (n, s), their mask (n, s) or None, and the manifest's description.
+
+    Decoders read contiguous blocks of the text stream (mask None: every position real). Encoders read real
+    sentences (`texts.split_sentences`), each with the tokenizer's own special tokens, sorted by length
+    (longest first, so that a batch of neighbours wastes little on padding) and padded; mask is 1 at real
+    tokens. The analysis pass and any later pass over the same text take these (ids, mask) batches.
+    """
+    ids: torch.Tensor
+    mask: torch.Tensor | None
+    description: dict
+
+
+def _calibration(loaded, texts: list[str], context: int, n_blocks: int, option: str = "--calib-context") -> Calibration:
+    """The calibration input of a model: blocks for a decoder, sentences for an encoder (see `Calibration`)."""
     context = min(context, loaded.shape.max_positions or context)  # a learned position table caps the context
+    if loaded.shape.is_decoder:
+        return _calibration_blocks(loaded, texts, context, n_blocks, option)
+    return _calibration_sentences(loaded, texts, context, n_blocks)
+
+
+def _calibration_blocks(loaded, texts: list[str], context: int, n_blocks: int, option: str) -> Calibration:
+    """Token blocks (n_blocks, context) of the calibration texts."""
     text, described = read_texts(texts)
     ids = tokens(loaded, text)
     blocks = token_blocks(ids, context, source=", ".join(str(t) for t in texts), option=option)
@@ -216,8 +239,18 @@ def _calibration_blocks(loaded, texts: list[str], context: int, n_blocks: int, o
         idx = torch.linspace(0, blocks.shape[0] - 1, n_blocks).round().long()
         blocks = blocks[idx]
     digest = hashlib.sha256(blocks.numpy().tobytes()).hexdigest()
-    return blocks, {"files": described, "context": context, "blocks": int(blocks.shape[0]),
-                    "tokens": int(blocks.numel()), "tokens_sha256": digest}
+    return Calibration(blocks, None, {"files": described, "context": context, "blocks": int(blocks.shape[0]),
+                                      "tokens": int(blocks.numel()), "tokens_sha256": digest})
+
+
+def _calibration_sentences(loaded, texts: list[str], context: int, n_sentences: int) -> Calibration:
+    """At most n_sentences evenly spaced sentences of the texts, at most `context` tokens each, padded."""
+    ids, mask, described = sentence_batch(loaded, texts, context, n_sentences)
+    order = torch.sort(mask.sum(1), descending=True, stable=True).indices  # longest first
+    ids, mask = ids[order], mask[order]
+    digest = hashlib.sha256(ids.numpy().tobytes() + mask.numpy().tobytes()).hexdigest()
+    return Calibration(ids, mask, {"files": described, "context": context, "sentences": int(ids.shape[0]),
+                                   "tokens": int(mask.sum()), "tokens_sha256": digest})
 
 
 def _save(scratch: Path, name: str, tensors: dict[str, torch.Tensor]) -> None:
@@ -283,7 +316,7 @@ def _first_pass(loaded: Loaded, calib, damping: float, scratch: Path | None, qui
                 bar.update(1)
         timer.lap("spectra")
         return Analysed(loaded, spectra, None, timer, damping)
-    blocks, description = calib
+    blocks, mask = calib.ids, calib.mask
     scratch.mkdir()
     xs = calibrate.embed(_ends(loaded, ("embed.",)), blocks)  # (n_blocks, s, d)
     store = calibrate.InputStore(scratch / "inputs") if priced else None
@@ -293,26 +326,27 @@ def _first_pass(loaded: Loaded, calib, damping: float, scratch: Path | None, qui
             w = layer_weights(loaded, i)
             if store is not None:
                 store.save(i, xs)
-            st = calibrate.forward_layer(sh, w, i, xs)
+            st = calibrate.forward_layer(sh, w, i, xs, mask)
             _save(scratch, f"layer-{i}", _stats_tensors(st))
             if not priced:
                 spectra[i] = analysis.layer_spectra(sh, w, i, _roots(sh, st, damping, w, i))
             bar.update(1)
     timer.lap("calibrate")
     if priced:
-        _backward_pass(loaded, blocks, xs, store, scratch, damping, spectra, quiet, timer)
-    return Analysed(loaded, spectra, description, timer, damping, scratch, blocks, priced)
+        _backward_pass(loaded, calib, xs, store, scratch, damping, spectra, quiet, timer)
+    return Analysed(loaded, spectra, calib.description, timer, damping, scratch, calib, priced)
 
 
-def _backward_pass(loaded: Loaded, blocks, xs, store, scratch: Path, damping: float, spectra: list, quiet: bool,
-                   timer: Timer) -> None:
+def _backward_pass(loaded: Loaded, calib: Calibration, xs, store, scratch: Path, damping: float, spectra: list,
+                   quiet: bool, timer: Timer) -> None:
     """The loss gradient back through the layers in reverse: sensitivities, then each layer's priced spectra."""
     sh = loaded.shape
-    grad, terms = calibrate.loss_gradient(_ends(loaded, ("embed.", "final_norm.", "lm_head.")), xs, blocks)
+    grad, terms = calibrate.loss_gradient(_ends(loaded, ("embed.", "final_norm.", "lm_head.")), xs, calib.ids,
+                                          calib.mask)
     with Progress(sh.n_layers, "sensitivity", unit="layer", quiet=quiet) as bar:
         for i in reversed(range(sh.n_layers)):
             w = layer_weights(loaded, i)
-            sens = calibrate.backward_layer(sh, w, i, store.pop(i), grad, terms)
+            sens = calibrate.backward_layer(sh, w, i, store.pop(i), grad, terms, calib.mask)
             _save(scratch, f"sens-{i}", sens.to_tensors())
             timer.lap("sensitivity")
             roots = _roots(sh, _stats_from(_load(scratch, f"layer-{i}")), damping, w, i, sens)
@@ -335,7 +369,7 @@ def analyse(path: str, texts: list[str] | None = None, *, damping: float = DEFAU
     """
     timer = Timer()
     loaded = open_model(path, heads, kv_heads)
-    calib = _calibration_blocks(loaded, texts, context, n_blocks, context_option) if texts else None
+    calib = _calibration(loaded, texts, context, n_blocks, context_option) if texts else None
     timer.lap("load")
     if calib is None or scratch is not None:
         return _first_pass(loaded, calib, damping, scratch, quiet, timer, priced)
@@ -456,8 +490,8 @@ def _second_pass(an: Analysed, p: planlib.RankPlan, shards, quiet: bool, sequent
     loaded, timer = an.loaded, an.timer
     sh = loaded.shape
     path = None
-    if sequential and an.blocks is not None:
-        path = calibrate.CutPath(calibrate.embed(_ends(loaded, ("embed.",)), an.blocks), refit)
+    if sequential and an.calib is not None:
+        path = calibrate.CutPath(calibrate.embed(_ends(loaded, ("embed.",)), an.calib.ids), refit, an.calib.mask)
     with Progress(sh.n_layers, "factorise", unit="layer", quiet=quiet) as bar:
         for i in range(sh.n_layers):
             new = _cut_layer(an, p, i, path, refit_damping)
@@ -475,12 +509,14 @@ def compress(path: str, out: str, *, keep: float | None = None, plan_file: str |
              strategy: str | None = None, texts: list[str] | None = None, weights_only: bool = False,
              damping: float = DEFAULT_DAMPING, force: bool = False, quiet: bool = False, context: int = CALIB_CONTEXT,
              n_blocks: int = CALIB_BLOCKS, shard_size: int | str = DEFAULT_SHARD_SIZE, sequential: bool = True,
-             refit: bool = True, refit_damping: float = fz.DEFAULT_REFIT_DAMPING, priced: bool = True) -> dict:
+             refit: bool = True, refit_damping: float = fz.DEFAULT_REFIT_DAMPING, priced: bool = True,
+             dtype: str | None = None) -> dict:
     """Compress a source checkpoint into a directory our runtime (and `expand`) reads.
 
     Streams: one layer's weights are in memory at a time (see the pipeline note above), and the output is
     written as it is made, to `model.safetensors`, or to shards with an index when it exceeds `shard_size`
-    (bytes, or a size such as "2GB"). Everything goes to a temporary sibling of `out` that is renamed at the
+    (bytes, or a size such as "2GB"), in format `dtype` (see `io.storage`; None: the source's own float
+    width, 16-bit for a quantised GGUF). Everything goes to a temporary sibling of `out` that is renamed at the
     end, so a failure or an interruption leaves nothing behind.
 
     Args (beyond the command's options): `strategy` None picks `loss` with calibration text, `uniform`
@@ -502,17 +538,20 @@ def compress(path: str, out: str, *, keep: float | None = None, plan_file: str |
     if not plan_file:
         _check_budget(keep, resolve_strategy(strategy, bool(texts) and priced))
     shard_bytes = parse_size(shard_size)
+    if dtype is not None:
+        storage.check_dtype(dtype)
     # Everything that can be checked without reading the weights is checked before any work.
     timer = Timer()
     loaded = open_model(path)
     given = read_plan_file(plan_file, loaded.shape) if plan_file else None
-    calib = _calibration_blocks(loaded, texts, context, n_blocks) if texts else None
+    calib = _calibration(loaded, texts, context, n_blocks) if texts else None
     timer.lap("load")
     sh, src = loaded.shape, loaded.source
+    dtype = dtype or storage.default_dtype(src)
     with atomic_dir(out, force) as tmp:
         an = _first_pass(loaded, calib, damping, tmp / ".calibration", quiet, timer, priced)
         p = make_rank_plan(an, keep, strategy, plan=given)
-        with ShardWriter(tmp, shard_bytes) as shards:
+        with ShardWriter(tmp, shard_bytes, dtype=dtype) as shards:
             _second_pass(an, p, shards, quiet, sequential, refit, refit_damping)
             files = shards.close()
         if an.scratch is not None:
@@ -525,7 +564,7 @@ def compress(path: str, out: str, *, keep: float | None = None, plan_file: str |
                                  for f in src.files]},
             "family": sh.family, "model_type": (src.config or {}).get("model_type"),
             "shape": json.loads(sh.to_json()), "plan": json.loads(p.to_json()), "method": method,
-            "calibration": an.calibration,
+            "calibration": an.calibration, "dtype": dtype,
         }
         write_model_dir(tmp, None, manifest, loaded.tokenizer, src.config)
         timer.lap("write")

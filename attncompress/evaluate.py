@@ -73,6 +73,23 @@ def perplexity(model: Transformer, ids: list[int] | torch.Tensor, context: int =
             "stride": stride}
 
 
+def mean_pool(hidden: torch.Tensor, mask: torch.Tensor) -> torch.Tensor:
+    """Mean of the hidden states (b, s, d) over the real tokens of the mask (b, s): (b, d), the sentence embedding."""
+    m = mask[..., None].to(hidden.dtype)  # (b, s, 1)
+    return (hidden * m).sum(1) / m.sum(1).clamp_min(1.0)  # mean over real tokens only
+
+
+@torch.no_grad()
+def pooled_embeddings(model: Transformer, ids: torch.Tensor, mask: torch.Tensor, batch: int = 32) -> torch.Tensor:
+    """Mean-pooled last hidden states of padded sentences ids, mask (n, s): (n, d); each batch cut to its longest."""
+    out = []
+    for i in range(0, ids.shape[0], batch):
+        m = mask[i:i + batch]
+        s = int(m.sum(1).max())
+        out.append(mean_pool(model(ids[i:i + batch, :s], attention_mask=m[:, :s]), m[:, :s]))  # (b, d)
+    return torch.cat(out)
+
+
 @torch.no_grad()
 def embed(model: Transformer, tokenizer, lines: list[str], batch: int = 32, max_len: int | None = None) -> torch.Tensor:
     """Mean-pooled last hidden states of an encoder, one row per line: (n_lines, d)."""
@@ -82,10 +99,59 @@ def embed(model: Transformer, tokenizer, lines: list[str], batch: int = 32, max_
     out = []
     for i in range(0, len(lines), batch):
         ids, mask = encode_batch(tokenizer, lines[i:i + batch], max_len)
-        h = model(ids, attention_mask=mask)  # (b, s, d)
-        m = mask[..., None].float()
-        out.append((h * m).sum(1) / m.sum(1).clamp_min(1.0))  # mean over real tokens only
+        out.append(mean_pool(model(ids, attention_mask=mask), mask))  # (b, d)
     return torch.cat(out)
+
+
+def ranks(x: torch.Tensor) -> torch.Tensor:
+    """Ranks 1..n of the values of a 1-D tensor, ties sharing their average rank. Example: [3, 1, 3] → [2.5, 1, 2.5]."""
+    order = torch.argsort(x, stable=True)
+    xs = x[order]
+    new = torch.ones(len(xs), dtype=torch.bool)
+    new[1:] = xs[1:] != xs[:-1]  # (n,) first member of each run of equal values
+    run = torch.cumsum(new.long(), 0) - 1  # (n,) run index of each sorted value
+    starts = torch.nonzero(new).flatten()  # (runs,) first sorted position of each run
+    ends = torch.cat([starts[1:], torch.tensor([len(xs)])])  # (runs,) one past its last
+    avg = (starts + ends + 1).double() / 2  # mean of the 1-based positions starts+1 .. ends
+    out = torch.empty(len(xs), dtype=torch.float64)
+    out[order] = avg[run]
+    return out
+
+
+def spearman(x: torch.Tensor, y: torch.Tensor) -> float:
+    """Spearman's rank correlation of two 1-D tensors: Pearson's correlation of their average ranks."""
+    rx, ry = ranks(x), ranks(y)
+    rx, ry = rx - rx.mean(), ry - ry.mean()
+    return float((rx * ry).sum() / (rx.norm() * ry.norm()).clamp_min(1e-300))
+
+
+def embedding_agreement(ea: torch.Tensor, eb: torch.Tensor) -> dict:
+    """How far two models' embeddings of the same sentences agree.
+
+    Args:
+        ea, eb: (n, d) embeddings of the same n sentences by models A and B (mean-pooled; any scale).
+    Returns:
+        {"cosine": {"mean", "p5", "min"}, "neighbour_agreement", "spearman", "cosines"}: the cosine of ea[i]
+        and eb[i] per sentence (summarised; "cosines" lists them all), the fraction of sentences whose most
+        similar other sentence is the same under both models, and the Spearman correlation of the n(n − 1)/2
+        pairwise cosine similarities under A with those under B (does B order all pairs as A does?).
+        Example: identical embeddings → cosine 1, agreement 1, Spearman 1.
+    Raises:
+        CompressError: fewer than 2 sentences.
+    """
+    n = ea.shape[0]
+    if n < 2:
+        raise CompressError(f"embedding agreement needs at least 2 lines of text, got {n}; give more lines")
+    a, b = F.normalize(ea.double(), dim=1), F.normalize(eb.double(), dim=1)  # (n, d), unit rows
+    cos = (a * b).sum(1)  # (n,)
+    sa, sb = a @ a.T, b @ b.T  # (n, d) @ (d, n) → (n, n) similarities within each model
+    iu = torch.triu_indices(n, n, offset=1)
+    rho = spearman(sa[iu[0], iu[1]], sb[iu[0], iu[1]])  # each unordered pair once
+    eye = torch.eye(n, dtype=torch.bool)
+    sa, sb = sa.masked_fill(eye, -math.inf), sb.masked_fill(eye, -math.inf)  # a line is not its own neighbour
+    agree = (sa.argmax(1) == sb.argmax(1)).double().mean()
+    return {"cosine": {"mean": float(cos.mean()), "p5": float(torch.quantile(cos, 0.05)), "min": float(cos.min())},
+            "neighbour_agreement": float(agree), "spearman": rho, "cosines": cos.tolist()}
 
 
 def encode_batch(tokenizer, lines: list[str], max_len: int) -> tuple[torch.Tensor, torch.Tensor]:
@@ -100,6 +166,28 @@ def encode_batch(tokenizer, lines: list[str], max_len: int) -> tuple[torch.Tenso
         ids[j, :len(q)] = torch.tensor(q)
         mask[j, :len(q)] = 1
     return ids, mask
+
+
+def sentence_batch(loaded, texts: list, max_len: int, n: int | None = None) -> tuple[torch.Tensor, torch.Tensor, list]:
+    """Padded token ids and mask (n, s) of the sentences of text files (`texts.read_sentences`), and their description.
+
+    Each sentence is tokenised alone with the tokenizer's own special tokens and cut to `max_len` tokens; with
+    `n`, at most n sentences, evenly spaced over the texts (so they cover all of them, not only the first).
+
+    Raises:
+        CompressError: unreadable text, no tokenizer, or fewer than 2 sentences.
+    """
+    from .texts import read_sentences
+    sentences, described = read_sentences(texts)
+    if loaded.tokenizer is None:
+        raise CompressError(f"{loaded.path}: no tokenizer found; expected tokenizer.json beside the weights")
+    if len(sentences) < 2:
+        raise CompressError(f"{', '.join(map(str, texts))}: {len(sentences)} sentence(s); an encoder needs at least "
+                            "2 (one per line, or paragraphs separated by blank lines)")
+    if n is not None and len(sentences) > n:
+        sentences = [sentences[int(i)] for i in torch.linspace(0, len(sentences) - 1, n).round().long()]
+    ids, mask = encode_batch(loaded.tokenizer, sentences, max_len)
+    return ids, mask, described
 
 
 def param_groups(weights: dict[str, torch.Tensor]) -> dict[str, int]:

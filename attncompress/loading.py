@@ -5,12 +5,12 @@ import json
 from dataclasses import dataclass
 from pathlib import Path
 
-import torch
 
 from . import arch
 from .errors import CompressError
 from .io.read import open_source
 from .io.source import MANIFEST, TensorSource
+from .io.storage import decode
 from .model import Transformer, build
 from .shape import ModelShape
 
@@ -51,10 +51,7 @@ def load_weights(path: str | Path, heads: int | None = None, kv_heads: int | Non
     if is_compressed(path):
         manifest = read_manifest(path)
         shape = ModelShape.from_json(manifest["shape"])
-        weights = {}
-        for n in source.names():
-            t = source.get(n)
-            weights[n] = t if not t.is_floating_point() else t.to(torch.float32)
+        weights = decode(source.names(), source.get)  # float32 whatever the stored format (io.storage)
         return shape, weights, source, None, manifest
     w = arch.walk(source, heads, kv_heads)
     weights = dict(arch.canonical_weights(source, w))

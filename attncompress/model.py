@@ -101,6 +101,37 @@ class LowRankLinear(nn.Module):
         return F.linear(F.linear(x, self.bt), self.a, self.bias)  # (.., d_in) @ (d_in, r) @ (r, d_out)
 
 
+class SharedInput(nn.Module):
+    """Projections of one input as one product: y_1, …, y_n of Linear or LowRankLinear parts.
+
+    The parts' first matrices (a dense weight (d_out_i, d_in), or a factor bᵀ (r_i, d_in)) are stacked into
+    one (Σ_i, d_in) matrix, read by one product per step instead of n; a low-rank part then applies its `a`.
+    Output i is part i's output (the same products; the last bits may round differently).
+    """
+
+    def __init__(self, parts: list):
+        super().__init__()
+        first = [p.weight if isinstance(p, Linear) else p.bt for p in parts]
+        self.sizes = [f.shape[0] for f in first]
+        self.first = nn.Parameter(gemv_layout(torch.cat([f.detach() for f in first])))  # (Σ_i, d_in)
+        dense_bias = [p.bias if isinstance(p, Linear) else None for p in parts]
+        self.bias = None
+        if any(b is not None for b in dense_bias):  # missing ones (and low-rank parts) add zeros
+            self.bias = nn.Parameter(torch.cat([b.detach() if b is not None else torch.zeros(n)
+                                                for b, n in zip(dense_bias, self.sizes)]))
+        self.seconds = nn.ModuleList(
+            [None if isinstance(p, Linear) else Linear(p.a.detach(), None if p.bias is None else p.bias.detach())
+             for p in parts])
+
+    @property
+    def params(self) -> int:
+        return self.first.numel() + sum(s.params for s in self.seconds if s is not None)
+
+    def forward(self, x) -> tuple[torch.Tensor, ...]:
+        h = F.linear(x, self.first, self.bias).split(self.sizes, dim=-1)  # (.., Σ_i) → (.., size_i) views
+        return tuple(y if second is None else second(y) for y, second in zip(h, self.seconds))
+
+
 def rotary_tables(inv_freq: torch.Tensor, start: int, length: int) -> tuple[torch.Tensor, torch.Tensor]:
     """cos and sin for positions start..start+length-1.
 
@@ -135,8 +166,12 @@ def rotate(x: torch.Tensor, cos: torch.Tensor, sin: torch.Tensor) -> torch.Tenso
     """`apply_rotary` with tables from `rotary_rows`: x (.., 2p) times cos, plus its halves swapped times signed sin.
 
     Example: one pair, x = [1, 0], angle θ → [cos θ, sin θ] (a rotation by θ).
+    Without autograd, x is overwritten (one temporary instead of three); with it, x is kept.
     """
-    return torch.addcmul(x * cos, x.roll(x.shape[-1] // 2, dims=-1), sin)
+    swapped = x.roll(x.shape[-1] // 2, dims=-1)
+    if torch.is_grad_enabled():
+        return torch.addcmul(x * cos, swapped, sin)
+    return x.mul_(cos).addcmul_(swapped, sin)
 
 
 class KVCache:
@@ -169,6 +204,7 @@ class Attention(nn.Module):
                  pairs: torch.Tensor | None = None, rope_theta: float | None = None):
         super().__init__()
         self.q, self.k, self.v, self.o = q, k, v, o
+        self.qkv = None  # a SharedInput replacing q, k, v after `fuse`
         self.n_heads, self.n_kv_heads, self.head_dim, self.causal = n_heads, n_kv_heads, head_dim, causal
         out_q = q.weight.shape[0] if isinstance(q, Linear) else q.a.shape[0]
         out_v = v.weight.shape[0] if isinstance(v, Linear) else v.a.shape[0]
@@ -196,9 +232,10 @@ class Attention(nn.Module):
         b, s, _ = x.shape
         h, g, wqk, wvo = self.n_heads, self.n_kv_heads, self.w_qk, self.w_vo
         rep = h // g
-        q = self.q(x).view(b, s, g, rep, wqk)  # (b, s, g, rep, w_qk): query head j = group j // rep, member j % rep
-        k = self.k(x).view(b, s, g, wqk)  # (b, s, g, w_qk)
-        v = self.v(x).view(b, s, g, wvo)  # (b, s, g, w_vo)
+        q, k, v = self.qkv(x) if self.qkv is not None else (self.q(x), self.k(x), self.v(x))
+        q = q.view(b, s, g, rep, wqk)  # (b, s, g, rep, w_qk): query head j = group j // rep, member j % rep
+        k = k.view(b, s, g, wqk)  # (b, s, g, w_qk)
+        v = v.view(b, s, g, wvo)  # (b, s, g, w_vo)
         if self.pairs is not None:
             cos, sin, cos_q, sin_q = self._rotary(start, s)  # (s, g, w_qk), (s, g, 1, w_qk)
             k = rotate(k, cos, sin)
@@ -260,9 +297,11 @@ class GatedMLP(nn.Module):
     def __init__(self, gate, up, down, activation: str):
         super().__init__()
         self.gate, self.up, self.down, self.act = gate, up, down, _ACTS[activation]
+        self.gate_up = None  # a SharedInput replacing gate and up after `fuse`
 
     def forward(self, x):
-        return self.down(self.act(self.gate(x)) * self.up(x))  # (b, s, f) → (b, s, d)
+        g, u = self.gate_up(x) if self.gate_up is not None else (self.gate(x), self.up(x))  # (b, s, f) each
+        return self.down(self.act(g) * u)  # (b, s, f) → (b, s, d)
 
 
 class MLP(nn.Module):
@@ -274,6 +313,11 @@ class MLP(nn.Module):
         return self.down(self.act(self.up(x)))
 
 
+def _residual(y: torch.Tensor, x: torch.Tensor) -> torch.Tensor:
+    """y + x, into y (a fresh output of the sub-layer) when no autograd records it."""
+    return y.add_(x) if not torch.is_grad_enabled() else y + x
+
+
 class Block(nn.Module):
     def __init__(self, attn_norm, attn, ff_norm, ff, pre_norm: bool):
         super().__init__()
@@ -281,8 +325,8 @@ class Block(nn.Module):
 
     def forward(self, x, **kw):
         if self.pre_norm:
-            x = x + self.attn(self.attn_norm(x), **kw)
-            return x + self.ff(self.ff_norm(x))
+            x = _residual(self.attn(self.attn_norm(x), **kw), x)
+            return _residual(self.ff(self.ff_norm(x)), x)
         # post-norm (BERT): normalise after each residual sum
         x = self.attn_norm(x + self.attn(x, **kw))
         return self.ff_norm(x + self.ff(x))
@@ -339,6 +383,23 @@ class Transformer(nn.Module):
     def forward(self, ids, **kw):
         x = self.hidden(ids, **kw)
         return self.logits(x) if self.is_decoder else x
+
+
+def fuse(model: Transformer) -> Transformer:
+    """Merge the projections that share an input, in place, for inference: per block one product for the
+    query, key and value inputs and one for the gate and up inputs (`SharedInput`). Same function, fewer
+    products per token; the separate q, k, v, gate and up modules are removed (training needs them: tune
+    works on an unfused model).
+    """
+    for blk in model.blocks:
+        a = blk.attn
+        if a.qkv is None:
+            a.qkv = SharedInput([a.q, a.k, a.v])
+            del a.q, a.k, a.v
+        if isinstance(blk.ff, GatedMLP) and blk.ff.gate_up is None:
+            blk.ff.gate_up = SharedInput([blk.ff.gate, blk.ff.up])
+            del blk.ff.gate, blk.ff.up
+    return model
 
 
 def _linear(w: dict, name: str) -> nn.Module:

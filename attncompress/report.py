@@ -15,7 +15,8 @@ def inspect_text(r: dict) -> str:
              "parameters: " + ", ".join(f"{k} {_m(v)}" for k, v in r["parameters"].items()),
              f"block matrices: {_m(r['block_matrix_parameters'])}"
              + (f"; KV cache {r['kv_bytes_per_token']:,} bytes/token (float32)" if r["kv_bytes_per_token"] else ""),
-             "dtypes: " + ", ".join(f"{k} x{v}" for k, v in r["dtypes"].items()), ""]
+             "dtypes: " + ", ".join(f"{k} x{v}" for k, v in r["dtypes"].items())
+             + (f" (format {r['storage']}; runs in float32)" if r.get("storage") else ""), ""]
     lines.append(f"{'layer':>5}  {'QK (heads x width)':<22} {'VO (groups x width)':<22} feed-forward")
     for L in r["layers"]:
         qk, vo = L["qk"], L["vo"]
@@ -81,8 +82,8 @@ def write_spectrum(r: dict, out: str, force: bool) -> str:
 
 def tune_lines(r: dict) -> list[str]:
     """What a tune read and which step it wrote: repeats per text, the held-out curve, an early stop."""
-    lines = ["texts: " + ", ".join(f"{d['name']} ({d['blocks']} blocks, read {d['repeats']:.1f}×)"
-                                   for d in r["data"]["files"])]
+    lines = ["texts: " + ", ".join(f"{d['name']} ({d['blocks']} blocks, read {d['repeats']:.1f}×)" if "repeats" in d
+                                   else d["name"] for d in r["data"]["files"])]
     h = r.get("heldout")
     if h:
         curve = ", ".join(f"{c['step']}: {c['loss']:.4f}" for c in h["curve"])
@@ -120,7 +121,8 @@ def compare_rows(r: dict) -> list[tuple[str, str, str, str]]:
              _fmt(ratio["parameters"], ".3f")),
             ("block-matrix parameters", _m(a["parameters"]["block_matrices"]), _m(b["parameters"]["block_matrices"]),
              _fmt(ratio["block_matrices"], ".3f"))]
-    disk = [_bytes(m["disk"]["bytes"]) + (" (quantised)" if m["disk"]["quantised"] else "") for m in (a, b)]
+    disk = [_bytes(m["disk"]["bytes"]) + f" ({m['disk'].get('format') or ('quantised' if m['disk']['quantised'] else '?')})"
+            for m in (a, b)]
     rows.append(("bytes on disk", disk[0], disk[1], _fmt(ratio["disk_bytes"], ".3f")))
     rows.append(("bytes in memory (float32)", _bytes(a["runtime_bytes"]), _bytes(b["runtime_bytes"]),
                  _fmt(ratio["runtime_bytes"], ".3f")))
@@ -129,17 +131,28 @@ def compare_rows(r: dict) -> list[tuple[str, str, str, str]]:
                      _fmt(ratio["kv_bytes_per_token"], ".3f")))
     if q and q["kind"] == "perplexity":
         rows += _perplexity_rows(q)
+        fe = r.get("format_effect")
+        if fe:
+            rows.append((f"perplexity of A as {fe['format']} (format alone)", _ppl(fe["float32"]), _ppl(fe["rounded"]),
+                         _ppl(fe["ratio"])))
     elif q:
         c = q["cosine"]
         rows.append((f"cosine A·B per line ({q['lines']} lines)", "", f"mean {c['mean']:.4f} p5 {c['p5']:.4f} "
                      f"min {c['min']:.4f}", ""))
         rows.append(("top-1 neighbour unchanged", "", f"{100 * q['neighbour_agreement']:.1f}%", ""))
+        rows.append(("Spearman of pairwise similarities", "", f"{q['spearman']:.4f}", ""))
+        for t in q.get("per_text", []):
+            c = t["cosine"]
+            rows.append((f"  {t['name']} ({t['lines']} lines)", "", f"cos {c['mean']:.4f} p5 {c['p5']:.4f} min "
+                         f"{c['min']:.4f}, top-1 {100 * t['neighbour_agreement']:.1f}%, Spearman {t['spearman']:.4f}",
+                         ""))
     if sp:
         if "prompt" in sp:
             p, d = sp["prompt"], sp["decode"]
             rows.append((f"prompt 1x{p['tokens']} (ms)", f"{p['a_ms']:.1f}", f"{p['b_ms']:.1f}",
                          f"speedup {p['speedup']:.2f}x"))
             rows.append(("decode (ms/token)", f"{d['a_ms']:.1f}", f"{d['b_ms']:.1f}", f"speedup {d['speedup']:.2f}x"))
+            rows.append(("generation (tokens/s)", f"{d['a_tokens_per_s']:.1f}", f"{d['b_tokens_per_s']:.1f}", ""))
             if "a_limit_ms" in d:
                 rows.append(("  bytes-read limit (ms/token)", f"{d['a_limit_ms']:.1f}", f"{d['b_limit_ms']:.1f}",
                              f"speedup {d['limit_speedup']:.2f}x at best"))
@@ -148,6 +161,7 @@ def compare_rows(r: dict) -> list[tuple[str, str, str, str]]:
             t = sp["batch"]
             rows.append((f"batch of {t['sentences']} sentences (ms)", f"{t['a_ms']:.1f}", f"{t['b_ms']:.1f}",
                          f"speedup {t['speedup']:.2f}x"))
+            rows.append(("sentences/s", f"{t['a_sentences_s']:.0f}", f"{t['b_sentences_s']:.0f}", ""))
     return rows
 
 
@@ -167,13 +181,16 @@ def _speed_note(sp: dict | None) -> str:
     if not sp:
         return "speed not measured"
     bw = f"streaming read {sp['bandwidth_gb_s']:.1f} GB/s; " if "bandwidth_gb_s" in sp else ""
-    note = (f"speed: same process, A and B interleaved, median of {sp['runs']} runs, {sp['threads']} threads; "
+    tc = sp.get("thread_choice") or {}
+    how = (f"{sp['threads']} threads, {tc['wait_policy']} waiting ({tc['reason']})" if tc
+           else f"{sp['threads']} threads")
+    note = (f"speed: same process, A and B interleaved, median of {sp['runs']} runs, {how}; "
             f"{bw}speedup = time A / time B")
     series = [sp[k][f"{side}_runs_ms"] for k in ("prompt", "decode", "batch") if k in sp for side in "ab"]
     spread = max((max(r) / min(r) for r in series if r), default=1.0)
     if spread > 1.3:
         note += (f"\nnoisy: runs of one figure differ by up to {spread:.1f}x (a loaded machine?); try --threads 1, "
-                 "more --runs, or OMP_WAIT_POLICY=PASSIVE when other jobs share the cores")
+                 "more --runs, or --threads N:passive when other jobs share the cores")
     return note
 
 
@@ -275,6 +292,23 @@ def _bar_plot(plt, labels: list[str], values: list[list[float]], series: list[st
     plt.close(fig)
 
 
+def _cosine_plot(plt, cosines: list[float], path) -> None:
+    """Histogram of the per-sentence cosine between A's and B's embeddings, with its mean and 5th percentile."""
+    import statistics
+    fig, ax = plt.subplots(figsize=(6, 3.2))
+    ax.hist(cosines, bins=min(40, max(5, len(cosines) // 5)), color="tab:blue")
+    srt = sorted(cosines)
+    p5 = srt[max(0, round(0.05 * (len(srt) - 1)))]
+    for x, style, name in ((statistics.fmean(cosines), "-", "mean"), (p5, "--", "5th percentile")):
+        ax.axvline(x, color="black", linestyle=style, label=f"{name} {x:.3f}")
+    ax.set_xlabel("cosine of A's and B's embedding of a sentence")
+    ax.set_ylabel("sentences")
+    ax.legend(loc="upper left")
+    fig.tight_layout()
+    fig.savefig(path, dpi=110)
+    plt.close(fig)
+
+
 def _quality_plot(plt, q: dict, path) -> None:
     """Perplexity per text of A and B, and of the compressed model before tuning when `run` measured it."""
     per = q.get("per_text") or [{"name": "all texts", "a": q["a"], "b": q["b"]}]
@@ -285,7 +319,7 @@ def _quality_plot(plt, q: dict, path) -> None:
 
 
 def write_compare(r: dict, out: str, force: bool) -> str:
-    """compare.json, report.md and (with matplotlib) ranks.png, quality.png and speed.png in one directory."""
+    """compare.json, report.md and (with matplotlib) ranks.png, quality.png, cosines.png (encoders) and speed.png."""
     from .io.write import atomic_dir, dumps
     with atomic_dir(out, force) as tmp:
         (tmp / "compare.json").write_text(dumps(r), encoding="utf-8")
@@ -309,6 +343,8 @@ def write_compare(r: dict, out: str, force: bool) -> str:
                           [[c["mean"]], [c["p5"]], [c["min"]], [q["neighbour_agreement"]]], ["A vs B"],
                           "cosine / fraction", tmp / "quality.png")
                 plots.append("quality.png")
+                _cosine_plot(plt, q["cosines"], tmp / "cosines.png")
+                plots.append("cosines.png")
             sp = r["speed"]
             if sp:
                 keys = [k for k in ("prompt", "decode", "batch") if k in sp]

@@ -87,7 +87,8 @@ def sensitivity_hooks(blk, sens: LayerSensitivity) -> list:
     return [m.register_forward_hook(forward(kind)) for kind, m in projections(blk).items()]
 
 
-def calibration_loss(top, hidden: torch.Tensor, ids: torch.Tensor, seed: int, start: int) -> tuple[torch.Tensor, int]:
+def calibration_loss(top, hidden: torch.Tensor, ids: torch.Tensor, seed: int, start: int,
+                     real: torch.Tensor | None = None) -> tuple[torch.Tensor, int]:
     """The summed loss S of one batch from the last block's output, and its number of terms.
 
     Args:
@@ -95,9 +96,10 @@ def calibration_loss(top, hidden: torch.Tensor, ids: torch.Tensor, seed: int, st
         hidden: (b, s, d) last block output, requiring grad.
         ids: (b, s) the batch's token ids.
         seed, start: the encoder's random directions come from `seed` and the batch's first row `start`.
+        real: (b, s) real tokens of padded sentences (encoders), or None.
     Returns:
         (S, m): decoders the summed next-token cross-entropy over b·(s − 1) targets; encoders Σ zᵀ ê over b
-        sentences (mean pooling over all s positions, as the calibration blocks carry no padding).
+        sentences (mean pooling over the real tokens, as `embed` pools).
     """
     if top.is_decoder:
         x = top.final_norm(hidden) if top.final_norm is not None else hidden
@@ -105,7 +107,9 @@ def calibration_loss(top, hidden: torch.Tensor, ids: torch.Tensor, seed: int, st
         s = F.cross_entropy(logits[:, :-1].reshape(-1, logits.shape[-1]).float(), ids[:, 1:].reshape(-1),
                             reduction="sum")
         return s, ids[:, 1:].numel()
-    e = F.normalize(hidden.mean(1), dim=-1)  # (b, d) normalised mean-pooled embedding
+    m = torch.ones(hidden.shape[:2]) if real is None else real.to(hidden.dtype)  # (b, s)
+    pooled = (hidden * m[..., None]).sum(1) / m.sum(1, keepdim=True).clamp_min(1.0)  # (b, d) over real tokens
+    e = F.normalize(pooled, dim=-1)  # (b, d) normalised mean-pooled embedding
     gen = torch.Generator().manual_seed(seed * 1_000_003 + start)
     z = torch.randn(e.shape, generator=gen, dtype=e.dtype)  # (b, d) one direction per sentence
     return (z * e).sum(), e.shape[0]

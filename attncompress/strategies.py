@@ -265,6 +265,8 @@ def plan_loss(spectra: Sequence[MatrixSpectrum], shape: ModelShape, keep: float,
     Raises:
         CompressError: as :func:`plan_global`.
     """
+    if keep >= 1:  # everything fits: keep everything, even units whose price rounds to nothing
+        return _plan_from_units(spectra, [s.max_units for s in spectra], shape, "loss", keep, bytes_per_element)
     return _greedy(spectra, shape, keep, min_fraction, None, False, bytes_per_element, "loss")
 
 

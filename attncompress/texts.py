@@ -7,6 +7,7 @@ are not UTF-8, an empty file, too little text for one block) raises
 from __future__ import annotations
 
 import hashlib
+import re
 from pathlib import Path
 
 import torch
@@ -15,6 +16,8 @@ from .corpora import CORPORA, corpus_text
 from .errors import CompressError
 
 _BOM = "\ufeff"  # a UTF-8 byte-order mark some editors put first; not part of the text
+SENTENCE_CHARS = 400  # a paragraph longer than this is cut at sentence ends (about 100 tokens of English)
+_SENTENCE_END = re.compile(r"(?<=[.!?])\s+(?=[A-Z0-9\"'(])")  # after . ! ? and before a capital: a new sentence
 
 
 def _read_one(path: str | Path) -> tuple[str, dict]:
@@ -109,6 +112,50 @@ def read_lines(path: str | Path) -> list[str]:
     text, _ = _read_one(path)
     # splitlines() also splits on \r\n and \r, so Windows line ends leave no stray \r
     return [line.strip() for line in text.splitlines() if line.strip()]
+
+
+def split_sentences(text: str, max_chars: int = SENTENCE_CHARS) -> list[str]:
+    """The sentences of a text for an encoder, in text order.
+
+    A text without a blank line is one sentence per line. Otherwise each paragraph (lines between blank lines,
+    joined with single spaces, as hard-wrapped prose) is one item, and a paragraph longer than `max_chars` is
+    cut at sentence ends into pieces of at most `max_chars` (a single longer sentence stays whole).
+
+    Example: "A b.\nC d." → ["A b.", "C d."]; "A b\nc. D e.\n\nF." with max_chars=5 → ["A b c.", "D e.", "F."].
+    """
+    lines = [ln.strip() for ln in text.splitlines()]
+    if all(lines):
+        return [ln for ln in lines if ln]
+    paragraphs = " ".join(ln if ln else "\n" for ln in lines).split("\n")
+    out = []
+    for para in paragraphs:
+        para = " ".join(para.split())
+        if not para:
+            continue
+        piece = ""
+        for sent in _SENTENCE_END.split(para) if len(para) > max_chars else [para]:
+            if piece and len(piece) + 1 + len(sent) > max_chars:
+                out.append(piece)
+                piece = sent
+            else:
+                piece = f"{piece} {sent}" if piece else sent
+        out.append(piece)
+    return out
+
+
+def read_sentences(paths: list[str | Path]) -> tuple[list[str], list[dict]]:
+    """The sentences (`split_sentences`) of each text file in turn, and the files' descriptions (`read_texts`).
+
+    Raises:
+        CompressError: as `read_texts`.
+    """
+    if isinstance(paths, (str, Path)):
+        paths = [paths]
+    _, described = read_texts(paths)
+    out = []
+    for path in paths:
+        out.extend(split_sentences(_read_one(path)[0]))
+    return out, described
 
 
 def token_blocks(ids: list[int] | torch.Tensor, context: int, *, source: str, option: str = "--context") -> torch.Tensor:

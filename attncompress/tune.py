@@ -18,6 +18,16 @@ of the hard ones (Hinton, Vinyals and Dean 2015, "Distilling the knowledge in a 
 default mix 0.5 weighs both terms equally; T = 1 keeps the teacher's own distribution. CE scores the s − 1
 next tokens of a block, KL all s positions. Without a teacher the loss is CE alone.
 
+Encoders (sentence embeddings). The data are sentences (`texts.split_sentences`: one per line, or cut from
+paragraphs), each tokenised with the tokenizer's special tokens, at most `context` tokens, padded; a batch
+is `batch` sentences, cut to its longest. The teacher (always needed) gives each sentence's normalised
+mean-pooled embedding t (the pooling of `embed`), and the student's e is pooled the same way:
+
+    cos: mean over sentences of 1 − cos(e, t)        mse: mean squared error of e/‖e‖ against t
+    [+ hidden_weight · Σ‖h − h_T‖² / Σ‖h_T‖² over the real tokens' last hidden states]  [+ penalty]
+
+Teacher targets are computed once per sentence, alone and unpadded, and kept (they are small).
+
 Teacher cache. Full teacher logits cost V·s·4 bytes a block (25 MB for SmolLM2 at 128 tokens), so each
 block keeps only its top-k teacher log-probabilities and their token ids (k = 64: 96 KiB a block at
 s = 128), computed once, on its own (batch 1, so a cached and a recomputed block give the same bits). The KL
@@ -86,6 +96,8 @@ from . import evaluate
 from .errors import CompressError
 from .loading import is_compressed, load_model, read_manifest, tokens
 from .model import LayerNorm, Linear, LowRankLinear, Transformer
+from .io import storage
+from .io.storage import decode
 from .io.write import atomic_dir, check_output, write_model_dir
 from .builtin import BUILTIN, resolve
 from .progress import Progress, Timer
@@ -128,6 +140,8 @@ class TuneSettings:
     heldout: float  # fraction of the blocks held out
     eval_every: int
     patience: int
+    embed_loss: str | None = None  # encoders: "cos" or "mse" on the normalised pooled embedding
+    hidden_weight: float = 0.0  # encoders: weight of the relative squared error of the last hidden states
 
     def to_json(self) -> dict:
         return asdict(self)
@@ -405,8 +419,12 @@ def find_teacher(teacher: str | None, src: Path, manifest: dict) -> tuple[Path |
 
 
 def _check_options(steps, batch, context, lr, decay, decay_coef, penalty_every, temperature, mix, topk, save_every,
-                   eval_tokens, world) -> None:
+                   eval_tokens, world, embed_loss="cos", hidden_weight=0.0) -> None:
     """One-line errors for option values that cannot work."""
+    if embed_loss not in EMBED_LOSSES:
+        raise CompressError(f"--embed-loss: unknown value {embed_loss!r}; expected one of {', '.join(EMBED_LOSSES)}")
+    if not (isinstance(hidden_weight, (int, float)) and math.isfinite(hidden_weight) and hidden_weight >= 0):
+        raise CompressError(f"--hidden-weight: must be a number ≥ 0, got {hidden_weight!r}")
     def positive_int(name, v):
         if isinstance(v, bool) or not isinstance(v, int) or v <= 0:
             raise CompressError(f"--{name}: must be a positive whole number, got {v!r}")
@@ -451,7 +469,12 @@ def repeats(owner: torch.Tensor, n_texts: int, seed: int, steps: int, batch: int
 
 
 def _warn_repeats(run: "_Run", job: _Job, s: TuneSettings) -> None:
-    """Record each text's repeats in the data description; warn when the run reads more than the text holds."""
+    """Record each text's repeats in the data description; warn when the run reads more than the text holds.
+
+    Decoders only: an encoder's sentences carry no per-text owner (nor, yet, a held-out slice).
+    """
+    if job.mask is not None:
+        return
     reps = repeats(job.owner, len(job.data["files"]), s.seed, s.steps, s.batch)
     for desc, r in zip(job.data["files"], reps):
         desc["repeats"] = round(r, 3)
@@ -520,6 +543,22 @@ def _perplexities(model, sets, context) -> dict[str, dict]:
             for _, desc, ids in sets for r in [evaluate.perplexity(model, ids, context=context)]}
 
 
+def _agreements(model, teacher, sets) -> dict[str, dict]:
+    """Per held-out file of sentences: the student's embeddings against the teacher's (`evaluate.embedding_agreement`)."""
+    out = {}
+    for _, desc, (ids, mask) in sets:
+        r = evaluate.embedding_agreement(evaluate.pooled_embeddings(teacher, ids, mask),
+                                         evaluate.pooled_embeddings(model, ids, mask))
+        out[desc["name"]] = {"cosine": r["cosine"], "neighbour_agreement": r["neighbour_agreement"],
+                             "spearman": r["spearman"], "sentences": ids.shape[0]}
+    return out
+
+
+def _held_out(job: "_Job", teacher, context: int) -> dict[str, dict]:
+    """The held-out figures of the model now: perplexity of a decoder, embedding agreement of an encoder."""
+    return _perplexities(job.model, job.sets, context) if job.mask is None else _agreements(job.model, teacher, job.sets)
+
+
 def checkpoint_path(out: str | Path) -> Path:
     """Where the tune writing `out` keeps its checkpoint: a hidden sibling file."""
     out = Path(out)
@@ -580,17 +619,57 @@ def distillation_loss(logits: torch.Tensor, x: torch.Tensor, targets, temperatur
 
 
 @dataclass(frozen=True)
+class SentenceTargets:
+    """What an encoder's student is pulled towards on a batch of sentences."""
+    mask: torch.Tensor  # (b, s) 1 at real tokens
+    unit: torch.Tensor  # (b, d) the teacher's normalised mean-pooled embeddings
+    hidden: torch.Tensor | None  # (b, s, d) the teacher's last hidden states (zero at padding), or None
+
+
+def _student_unit(hidden: torch.Tensor, targets: SentenceTargets) -> torch.Tensor:
+    """The student's normalised mean-pooled embeddings (b, d) from its last hidden states (b, s, d)."""
+    return F.normalize(evaluate.mean_pool(hidden.float(), targets.mask), dim=-1)
+
+
+def embedding_cosine_loss(hidden: torch.Tensor, x, targets: SentenceTargets, temperature: float) -> torch.Tensor:
+    """Mean over sentences of 1 − cos(student embedding, teacher embedding) (`x`, `temperature` unused)."""
+    return (1 - (_student_unit(hidden, targets) * targets.unit).sum(-1)).mean()
+
+
+def embedding_mse_loss(hidden: torch.Tensor, x, targets: SentenceTargets, temperature: float) -> torch.Tensor:
+    """Mean squared error of the normalised student embedding against the teacher's, over sentences and width."""
+    return F.mse_loss(_student_unit(hidden, targets), targets.unit)
+
+
+def hidden_state_loss(hidden: torch.Tensor, x, targets: SentenceTargets, temperature: float) -> torch.Tensor:
+    """Σ ‖h − h_T‖² / Σ ‖h_T‖² over the real tokens' last hidden states (b, s, d): scale-free."""
+    m = targets.mask.bool()
+    h, t = hidden.float()[m], targets.hidden[m]  # (n_real, d) each
+    return (h - t).pow(2).sum() / t.pow(2).sum().clamp_min(1e-30)
+
+
+@dataclass(frozen=True)
 class LossTerm:
     fn: Callable[[torch.Tensor, torch.Tensor, object, float], torch.Tensor]
     needs_teacher: bool
 
 
-LOSSES: dict[str, LossTerm] = {"ce": LossTerm(next_token_loss, False), "kl": LossTerm(distillation_loss, True)}
+LOSSES: dict[str, LossTerm] = {"ce": LossTerm(next_token_loss, False), "kl": LossTerm(distillation_loss, True),
+                               "cos": LossTerm(embedding_cosine_loss, True), "mse": LossTerm(embedding_mse_loss, True),
+                               "hidden": LossTerm(hidden_state_loss, True)}
+EMBED_LOSSES = ("cos", "mse")  # the encoder's embedding loss, `--embed-loss`
+DEFAULT_EMBED_LOSS = "cos"
+DEFAULT_SENTENCE_BATCH = 32  # sentences per step of an encoder tune (a decoder's default is 4 blocks)
 
 
 def loss_weights(mix: float, teacher: bool) -> dict[str, float]:
     """Weight of each loss term: mix·CE + (1 − mix)·KL with a teacher, CE alone without."""
     return {"ce": mix, "kl": 1 - mix} if teacher else {"ce": 1.0}
+
+
+def sentence_loss_weights(embed_loss: str, hidden_weight: float) -> dict[str, float]:
+    """Weight of each loss term of an encoder: the embedding loss, and the hidden states' when weighted."""
+    return {embed_loss: 1.0, **({"hidden": hidden_weight} if hidden_weight > 0 else {})}
 
 
 def step_loss(logits, x, targets, weights: dict[str, float], temperature: float):
@@ -628,16 +707,22 @@ class _Job:
     ckpt: Path
     manifest: dict
     loaded: object  # loading.Loaded
-    blocks: torch.Tensor  # (n, s) training blocks
+    blocks: torch.Tensor  # (n, s) training blocks, or an encoder's padded sentences
     owner: torch.Tensor  # (n,) which text each training block comes from
-    held: torch.Tensor  # (m, s) held-out blocks of the same texts, never trained on
+    held: torch.Tensor  # (m, s) held-out blocks of the same texts, never trained on (none for an encoder)
     data: dict  # the manifest's description of the training data
-    sets: list  # (file name, description, token ids) per held-out file
+    sets: list  # (file name, description, token ids or (ids, mask) of sentences) per held-out file
     force: bool  # replace an existing output
+    mask: torch.Tensor | None = None  # (n, s) an encoder's attention mask; None for a decoder's blocks
 
     @property
     def model(self) -> Transformer:
         return self.loaded.model
+
+    @property
+    def tokens_per_item(self) -> float:
+        """Tokens in one block, or in one sentence on average (the real ones)."""
+        return self.data["tokens"] / self.blocks.shape[0]
 
 
 def _open_job(src_dir, texts, out, *, context, heldout, eval_texts, eval_tokens, resume, force) -> _Job:
@@ -660,11 +745,17 @@ def _open_job(src_dir, texts, out, *, context, heldout, eval_texts, eval_tokens,
         raise CompressError("no training text; give at least one --text FILE")
     manifest = read_manifest(src)
     loaded = load_model(src)
-    if not loaded.model.is_decoder:
-        raise CompressError(f"{src}: tune needs a decoder; this {loaded.shape.family} model is an encoder")
     max_pos = loaded.shape.max_positions
     if max_pos and context > max_pos:
         raise CompressError(f"--context {context}: longer than the model's {max_pos} positions; give at most {max_pos}")
+    if not loaded.model.is_decoder:
+        ids, mask, described = evaluate.sentence_batch(loaded, texts, context)  # (n, s) each
+        sets = [(str(p), d, evaluate.sentence_batch(loaded, [p], context)[:2])
+                for p, d in zip(eval_texts or [], read_texts(eval_texts)[1] if eval_texts else [])]
+        data = {"files": described, "context": context, "sentences": ids.shape[0], "tokens": int(mask.sum()),
+                "tokens_sha256": hashlib.sha256(ids.numpy().tobytes() + mask.numpy().tobytes()).hexdigest()}
+        owner = torch.zeros(len(ids), dtype=torch.long)
+        return _Job(src, out, ckpt, manifest, loaded, ids, owner, ids[:0], data, sets, force, mask)
     parts, described = [], []
     for path in texts:
         text, (desc,) = read_texts([path])
@@ -683,17 +774,22 @@ def _open_job(src_dir, texts, out, *, context, heldout, eval_texts, eval_tokens,
 
 
 def _load_teacher(teacher: str | None, job: _Job, mix: float) -> tuple[Transformer | None, dict | None]:
-    """The frozen teacher runtime and its identity, or (None, None) without distillation (mix = 1)."""
-    if mix >= 1:
+    """The frozen teacher runtime and its identity, or (None, None) without distillation (a decoder's mix = 1)."""
+    decoder = job.model.is_decoder
+    if mix >= 1 and decoder:
         return None, None
     path, ident = find_teacher(teacher, job.src, job.manifest)
     if path is None:
+        if not decoder:
+            raise CompressError("--teacher none: an encoder is tuned towards its teacher's embeddings; give the "
+                                "source model (or leave --teacher out to use the manifest's)")
         return None, ident
     tl = load_model(path)
-    vocab = job.loaded.shape.vocab_size
-    if not tl.model.is_decoder or tl.shape.vocab_size != vocab:
-        raise CompressError(f"--teacher {path}: a decoder with {vocab} tokens is expected, got "
-                            f"a {tl.shape.family} model with {tl.shape.vocab_size}")
+    sh = job.loaded.shape
+    if tl.model.is_decoder != decoder or tl.shape.vocab_size != sh.vocab_size or tl.shape.d_model != sh.d_model:
+        kind = "a decoder" if decoder else "an encoder"
+        raise CompressError(f"--teacher {path}: {kind} with {sh.vocab_size} tokens and width {sh.d_model} is expected, "
+                            f"got a {tl.shape.family} model with {tl.shape.vocab_size} and {tl.shape.d_model}")
     tl.model.requires_grad_(False)
     return tl.model, ident
 
@@ -730,6 +826,35 @@ class TeacherCache:
         logp = torch.stack([t[0] for t in tg]).reshape(-1, tg[0][0].shape[-1])  # (b·s, k)
         ids = torch.stack([t[1] for t in tg]).reshape(-1, tg[0][1].shape[-1])  # (b·s, k)
         return logp, ids
+
+
+class SentenceTeacher:
+    """An encoder teacher's targets per sentence, each computed once, alone and unpadded (so bits never depend
+    on the batch), and kept: (d,) normalised pooled embeddings, and (s, d) hidden states when they are trained on."""
+
+    def __init__(self, model: Transformer, ids: torch.Tensor, mask: torch.Tensor, hidden: bool):
+        self.model, self.ids, self.mask, self.hidden = model, ids, mask, hidden
+        self._kept: dict[int, tuple[torch.Tensor, torch.Tensor | None]] = {}
+        self.description = "kept" + (" with hidden states" if hidden else "")
+
+    def sentence(self, j: int) -> tuple[torch.Tensor, torch.Tensor | None]:
+        """(unit (d,), hidden (n_j, d) or None) of sentence j."""
+        if j not in self._kept:
+            n = int(self.mask[j].sum())
+            with torch.no_grad():
+                h = self.model(self.ids[j:j + 1, :n])[0].float()  # (n, d): one sentence, no padding
+            self._kept[j] = (F.normalize(h.mean(0), dim=-1), h if self.hidden else None)
+        return self._kept[j]
+
+    def batch(self, idx: torch.Tensor, s: int) -> SentenceTargets:
+        """Targets of the sentences idx, the mask and hidden states cut to s positions."""
+        got = [self.sentence(int(j)) for j in idx]
+        hidden = None
+        if self.hidden:
+            hidden = torch.zeros(len(got), s, got[0][1].shape[-1])  # (b, s, d), zero at padding
+            for i, (_, h) in enumerate(got):
+                hidden[i, :h.shape[0]] = h
+        return SentenceTargets(self.mask[idx, :s], torch.stack([u for u, _ in got]), hidden)
 
 
 def _optimizer(model: Transformer, s: TuneSettings) -> tuple[torch.optim.AdamW, list]:
@@ -769,7 +894,9 @@ class _Run:
         if self.world > 1:
             from torch.nn.parallel import DistributedDataParallel
             self.net = DistributedDataParallel(self.job.model)
-        self.weights = loss_weights(self.settings.mix, self.teacher is not None)
+        s = self.settings
+        self.weights = (loss_weights(s.mix, self.teacher is not None) if self.job.mask is None
+                        else sentence_loss_weights(s.embed_loss, s.hidden_weight))
         self.curve: list[dict] = []
         self.warnings: list[str] = []
         self.pen_value: float | None = None
@@ -821,8 +948,14 @@ class _Run:
         for g in self.opt.param_groups:
             g["lr"] = lr
         self.opt.zero_grad(set_to_none=True)
-        logits = self.net(x)  # (b, s, V)
-        targets = self.teacher.batch(idx) if self.teacher is not None else None
+        if self.job.mask is None:
+            logits = self.net(x)  # (b, s, V)
+            targets = self.teacher.batch(idx) if self.teacher is not None else None
+        else:  # sentences: the batch cut to its longest, padded keys masked
+            n = int(self.job.mask[idx].sum(1).max())
+            targets = self.teacher.batch(idx, n)
+            x = x[:, :n]  # (b, n)
+            logits = self.net(x, attention_mask=targets.mask)  # (b, n, d) last hidden states
         loss, terms = step_loss(logits, x, targets, self.weights, s.temperature)
         pen = self._penalty(step, loss)
         total = loss if pen is None else loss + s.penalty_every * pen  # lazy: the weight of the skipped steps
@@ -894,7 +1027,7 @@ class _Run:
                     bar.update(1, step=f"{step + 1}/{s.steps}", loss=self.curve[-1]["loss"],
                                heldout=self.heldout[-1]["loss"] if held else "-",
                                penalty=self.pen_value if self.pen_value is not None else "-",
-                               tok_s=f"{s.batch * s.context / dt:.0f}")
+                               tok_s=f"{s.batch * self.job.tokens_per_item / dt:.0f}")
                     timer.lap("heldout")
                     if stop and self.last < s.steps:
                         self.stopped = self.last
@@ -911,41 +1044,45 @@ class _Run:
 
 # ------------------------------------------------------------------------------------ writing the result
 
-def _write_tuned(job: _Job, trained: list, section: dict) -> None:
-    """The tuned directory: the source's tensors with the trained ones replaced, its manifest with `tune`."""
+def _write_tuned(job: _Job, trained: list, section: dict, dtype: str) -> None:
+    """The tuned directory in format `dtype`: the source's tensors with the trained ones replaced, its manifest
+    with `tune`."""
     manifest = copy.deepcopy(job.manifest)
+    manifest["dtype"] = dtype
     if "tune" in job.manifest:
         section["previous"] = job.manifest["tune"]
     manifest["tune"] = section
     source = job.loaded.source
-    weights = {n: source.get(n) for n in source.names()}
+    weights = decode(source.names(), source.get)  # float32 canonical tensors, int8 pairs multiplied back
     for n, p, transposed in trained:
         weights[n] = (p.detach().T if transposed else p.detach()).contiguous().clone()
     cfg_file = job.src / "source-config.json"
     config = json.loads(cfg_file.read_text(encoding="utf-8")) if cfg_file.is_file() else None
     with atomic_dir(job.out, job.force) as tmp:
-        write_model_dir(tmp, weights, manifest, job.loaded.tokenizer, config)
+        write_model_dir(tmp, weights, manifest, job.loaded.tokenizer, config, dtype)
     job.ckpt.unlink(missing_ok=True)
 
 
 # ------------------------------------------------------------------------------------------- the tune
 
-def tune(src_dir: str | Path, texts: list[str | Path], out: str | Path, *, steps: int = 100, batch: int = 4,
+def tune(src_dir: str | Path, texts: list[str | Path], out: str | Path, *, steps: int = 100, batch: int | None = None,
          context: int = 128, lr: float = 1e-4, seed: int = 0, decay: str = DEFAULT_DECAY,
          decay_coef: float = DEFAULT_DECAY_COEF, penalty_every: int = DEFAULT_PENALTY_EVERY,
          temperature: float = DEFAULT_TEMPERATURE, mix: float = DEFAULT_MIX, teacher: str | None = None,
          topk: int = DEFAULT_TOPK, eval_texts: list[str | Path] | None = None, eval_tokens: int | None = None,
          save_every: int = 100, resume: bool = False, train_norms: bool = False, train_dense: bool = False,
-         heldout: float = DEFAULT_HELDOUT, eval_every: int = DEFAULT_EVAL_EVERY, patience: int = DEFAULT_PATIENCE,
-         force: bool = False, quiet: bool = False) -> dict:
+         embed_loss: str = DEFAULT_EMBED_LOSS, hidden_weight: float = 0.0, heldout: float = DEFAULT_HELDOUT,
+         eval_every: int = DEFAULT_EVAL_EVERY, patience: int = DEFAULT_PATIENCE, force: bool = False,
+         quiet: bool = False, dtype: str | None = None) -> dict:
     """Fine-tune the factors of a compressed directory on text and write the tuned directory.
 
     Args:
         src_dir: a directory written by `compress` (or by an earlier tune).
-        texts: UTF-8 training text files, cut into blocks of `context` tokens.
+        texts: UTF-8 training text files, cut into blocks of `context` tokens (an encoder's: into sentences of at
+            most `context` tokens, see the module docstring).
         out: the directory to write (same layout as `src_dir`; its manifest gains a `tune` section).
-        steps, batch, context, lr, seed: optimiser steps, global blocks per step, tokens per block, peak
-            learning rate, seed of the data order.
+        steps, batch, context, lr, seed: optimiser steps, global blocks (sentences) per step (default 4 blocks,
+            `DEFAULT_SENTENCE_BATCH` sentences), tokens per block, peak learning rate, seed of the data order.
         decay, decay_coef, penalty_every: a key of `DECAYS` ("frobenius" | "factor" | "none"), λ, and how often
             the Frobenius penalty is evaluated (see the module docstring).
         temperature, mix, teacher, topk: distillation temperature, weight of the next-token loss, teacher path
@@ -954,9 +1091,12 @@ def tune(src_dir: str | Path, texts: list[str | Path], out: str | Path, *, steps
             `eval_tokens` tokens of each.
         save_every, resume: checkpoint every N steps (0: never); continue from the checkpoint.
         train_norms, train_dense: also train the norm weights; also the dense feed-forward matrices.
+        embed_loss, hidden_weight: an encoder's embedding loss ("cos" | "mse") and the weight of its hidden-state
+            term (0: none); decoders ignore them.
         heldout, eval_every, patience: fraction of the blocks held out, steps between held-out evaluations,
             evaluations without a new best before stopping (see "Best step" in the module docstring).
         force, quiet: replace `out` and a stale checkpoint; no progress line.
+        dtype: format of the weights written (`io.storage`; default: the input directory's). Training is float32.
 
     Returns:
         A report dict: out, steps, steps_run, tokens, seconds, tokens_per_second, curve, heldout, data (with
@@ -968,16 +1108,26 @@ def tune(src_dir: str | Path, texts: list[str | Path], out: str | Path, *, steps
         TuneInterrupted: Ctrl-C; the last checkpoint (if any) is complete.
     """
     timer = Timer()
-    _check_options(steps, batch, context, lr, decay, decay_coef, penalty_every, temperature, mix, topk, save_every,
-                   eval_tokens, max(1, int(os.environ.get("WORLD_SIZE", "1"))))
+    if dtype is not None:
+        storage.check_dtype(dtype)
+    world_size = max(1, int(os.environ.get("WORLD_SIZE", "1")))
+    _check_options(steps, batch or world_size, context, lr, decay, decay_coef, penalty_every, temperature, mix, topk,
+                   save_every, eval_tokens, world_size, embed_loss, hidden_weight)
     _check_heldout(heldout, eval_every, patience)
     job = _open_job(src_dir, texts, out, context=context, heldout=heldout, eval_texts=eval_texts,
                     eval_tokens=eval_tokens, resume=resume, force=force)
+    encoder = job.mask is not None
+    batch = batch or (DEFAULT_SENTENCE_BATCH if encoder else 4)
+    _check_options(steps, batch, context, lr, decay, decay_coef, penalty_every, temperature, mix, topk, save_every,
+                   eval_tokens, world_size)
     teacher_model, t_ident = _load_teacher(teacher, job, mix)
     settings = TuneSettings(steps=steps, batch=batch, context=context, lr=float(lr), seed=seed, decay=decay,
                             decay_coef=float(decay_coef), penalty_every=penalty_every, temperature=float(temperature),
-                            mix=float(mix) if teacher_model is not None else 1.0, topk=topk, train_norms=train_norms,
-                            train_dense=train_dense, warmup=max(1, round(WARMUP_FRACTION * steps)),
+                            mix=0.0 if encoder else float(mix) if teacher_model is not None else 1.0, topk=topk,
+                            train_norms=train_norms, train_dense=train_dense,
+                            warmup=max(1, round(WARMUP_FRACTION * steps)),
+                            embed_loss=embed_loss if encoder else None,
+                            hidden_weight=float(hidden_weight) if encoder else 0.0,
                             heldout=float(heldout), eval_every=eval_every, patience=patience)
     model_sha = _sha256_file(job.src / "model.safetensors")
     fingerprint = {"settings": json.dumps(settings.to_json(), sort_keys=True), "data": job.data["tokens_sha256"],
@@ -986,7 +1136,9 @@ def tune(src_dir: str | Path, texts: list[str | Path], out: str | Path, *, steps
     rank, world, created = _init_distributed()
     try:
         cache = held_cache = None
-        if teacher_model is not None:
+        if encoder:
+            cache = SentenceTeacher(teacher_model, job.blocks, job.mask, settings.hidden_weight > 0)
+        elif teacher_model is not None:
             touched = min(job.blocks.shape[0], steps * (batch // world))
             cache = TeacherCache(teacher_model, job.blocks, topk, settings.temperature, touched)
             held_cache = TeacherCache(teacher_model, job.held, topk, settings.temperature, len(job.held))
@@ -995,13 +1147,13 @@ def tune(src_dir: str | Path, texts: list[str | Path], out: str | Path, *, steps
         timer.lap("load")
         if eval_before is None and job.sets:
             if rank == 0:
-                eval_before = _perplexities(job.model, job.sets, context)
+                eval_before = _held_out(job, teacher_model, context)
             _barrier(world)
         timer.lap("eval_before")
         _warn_repeats(run, job, settings)
         run.train(start, eval_before, timer)
         run.restore_best()
-        eval_after = _perplexities(job.model, job.sets, context) if job.sets and rank == 0 else None
+        eval_after = _held_out(job, teacher_model, context) if job.sets and rank == 0 else None
         timer.lap("eval_after")
         section = {"settings": settings.to_json(), "data": job.data, "teacher": t_ident,
                    "teacher_cache": cache.description if cache is not None else None,
@@ -1010,14 +1162,14 @@ def tune(src_dir: str | Path, texts: list[str | Path], out: str | Path, *, steps
                             "before": eval_before, "after": eval_after},
                    "curve": run.curve, "heldout": _heldout_report(run)}
         if rank == 0:
-            _write_tuned(job, trained, section)
+            _write_tuned(job, trained, section, dtype or storage.default_dtype(None, job.manifest))
         _barrier(world)
         timer.lap("write")
     finally:
         if created:
             import torch.distributed as dist
             dist.destroy_process_group()
-    trained_tokens = (run.last - start) * batch * context
+    trained_tokens = round((run.last - start) * batch * job.tokens_per_item)
     t_train, stages = timer.total("train"), timer.stages
     return {"out": str(job.out), "steps": steps, "steps_run": run.last, "start_step": start, "tokens": trained_tokens,
             "tokens_per_second": trained_tokens / t_train if t_train > 0 else None,

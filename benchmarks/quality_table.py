@@ -103,7 +103,7 @@ def main():
     del dense
     print(f"original perplexity: same kind {base['same']:.3f}, other kind {base['other']:.3f}", flush=True)
     loaded = pipeline.open_model("builtin:smollm2-135m")
-    calib = pipeline._calibration_blocks(loaded, ["corpus:pydoc-calibration"], pipeline.CALIB_CONTEXT, args.blocks)
+    calib = pipeline._calibration(loaded, ["corpus:pydoc-calibration"], pipeline.CALIB_CONTEXT, args.blocks)
     rows, first = [], {}
     with tempfile.TemporaryDirectory() as tmp:
         analysed = {}

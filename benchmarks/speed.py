@@ -1,50 +1,176 @@
-"""Decode and prompt speed of compressed SmolLM2 against the dense model, side by side in one run.
+"""Decode and prompt speed, and bytes on disk, of compressed SmolLM2 against the dense model, in one run.
 
-    python benchmarks/speed.py [--keeps 0.5,0.7] [--runs 7] [--threads N] [--work DIR] [--json]
+    python benchmarks/speed.py [--keeps 0.5,0.7] [--runs 7] [--threads SPEC] [--plain] [--disk] [--work DIR]
+    python benchmarks/speed.py --table        # the README's speed and disk tables from the results file
 
-Every model (the dense built-in SmolLM2 in float32 and one compressed copy per --keep) is loaded into this
-one process and timed by `attncompress.compare.time_decoders`: per run, a 1×256 prompt (logits of the last
-position only, as generation needs) and 16 single-token decode steps with the KV cache, the models
-alternating step by step; the median over runs is reported. The machine's streaming read bandwidth is
-sampled once per run (`measure_bandwidth`: summing a 256 MB float32 tensor), so the bytes-read limit of a
-decode step (every weight read once, plus the cached keys and values) is measured under the same load.
+Every model (the dense built-in SmolLM2 in float32 and one compressed copy per --keep, in the tool's default
+format) is loaded into this one process, fused as the tool runs it (`attncompress.model.fuse`; --plain:
+not), and timed by `attncompress.compare.time_decoders`: per run, a 1×256 prompt (logits of the last position
+only, as generation needs) and 16 single-token decode steps with the KV cache, the models alternating step
+by step; the median over runs is reported. The streaming read bandwidth is sampled once per run
+(`measure_bandwidth`), so the bytes-read limit of a decode step (every weight read once, plus the cached keys
+and values) is measured under the same load.
+
+Threads and OpenMP waiting are the tool's own start-up choice (`attncompress.threads`; --threads SPEC or
+ATTNCOMPRESS_THREADS to override), stated in the output with the load average before and after.
+
+--disk also writes the keep-0.7 copy in float32 and int8 and reports bytes on disk against the float32 size of
+the original (4 bytes per parameter), and held-out perplexity (corpus:pydoc-heldout, first 4096 tokens,
+context 512) of each format against float32, for that copy and for the dense model rounded to int8.
 
 The compressed copies are made with plain SVD (`--weights-only`): only their shapes matter for speed, and a
-calibrated plan of the same budget has the same parameter count. They are cached in --work.
-
-OMP_WAIT_POLICY=PASSIVE is set unless the environment sets it: on a machine shared with other CPU jobs,
-spinning OpenMP threads wait for each other's time slices and two-thread timings become meaningless.
+calibrated plan of the same budget has the same parameter count. They are cached in --work. Results are
+written to benchmarks/results/speed.json (the command, commit, load averages and thread choice included).
 """
-import argparse
-import json
 import os
-import statistics
 import sys
-from pathlib import Path
 
-os.environ.setdefault("OMP_WAIT_POLICY", "PASSIVE")  # before torch starts its thread pool
+sys.path.insert(0, os.path.dirname(os.path.dirname(os.path.abspath(__file__))))
+from attncompress import threads as threadlib  # noqa: E402
+
+CHOICE = threadlib.configure(sys.argv)  # before torch starts its thread pool
+LOAD_BEFORE = os.getloadavg()
+
+import argparse  # noqa: E402
+import json  # noqa: E402
+import statistics  # noqa: E402
+import subprocess  # noqa: E402
+from pathlib import Path  # noqa: E402
 
 import torch  # noqa: E402
 
+from attncompress import evaluate  # noqa: E402
+from attncompress.builtin import resolve  # noqa: E402
 from attncompress.compare import decode_bytes, measure_bandwidth, time_decoders  # noqa: E402
 from attncompress.compress import compress  # noqa: E402
-from attncompress.evaluate import block_matrix_params  # noqa: E402
-from attncompress.loading import is_compressed, load_model, read_manifest  # noqa: E402
-from attncompress.builtin import resolve  # noqa: E402
+from attncompress.io import storage  # noqa: E402
+from attncompress.loading import is_compressed, load_model, load_weights, read_manifest, tokens  # noqa: E402
+from attncompress.model import build, fuse  # noqa: E402
+from attncompress.texts import read_texts  # noqa: E402
 
 SOURCE = "builtin:smollm2-135m"
-# (decode, prompt) speedups the issue asks for, by keep
-GOALS = {0.5: (1.6, 1.9), 0.7: (1.3, 1.3)}
-LIMIT_GOAL = 1.5  # decode time within 1.5x of the bytes-read limit
+RESULTS = Path(__file__).parent / "results" / "speed.json"
+# issue 14's goals: (decode, prompt) speedups by keep; decode within LIMIT_GOAL of the bytes-read limit;
+# disk of keep 0.7 against the original's float32 size: default format, int8; int8 perplexity within 2%
+GOALS = {0.5: (1.6, 1.8), 0.7: (1.25, 1.3)}
+LIMIT_GOAL = 1.3
+DISK_GOALS = {"default": 0.5, "int8": 0.3}
+PPL_GOAL = 1.02
+HELDOUT, PPL_TOKENS, PPL_CONTEXT = "corpus:pydoc-heldout", 4096, 512
 
 
-def compressed_copy(work: Path, keep: float) -> Path:
-    out = work / f"smollm2-keep{keep:g}"
-    if is_compressed(out) and read_manifest(out)["plan"]["keep"] == keep:
-        return out
-    print(f"compressing {SOURCE} at keep {keep:g} (plain SVD) into {out} ...", file=sys.stderr)
-    compress(SOURCE, str(out), keep=keep, weights_only=True, force=True, quiet=True)
+def compressed_copy(work: Path, keep: float, dtype: str | None = None) -> Path:
+    """The plain-SVD copy at `keep` in format `dtype` (None: the tool's default), made once and cached."""
+    out = work / (f"smollm2-keep{keep:g}" + (f"-{dtype}" if dtype else ""))
+    if is_compressed(out):
+        m = read_manifest(out)
+        if m["plan"]["keep"] == keep and (dtype is None or m.get("dtype") == dtype):
+            return out
+    print(f"compressing {SOURCE} at keep {keep:g} (plain SVD, {dtype or 'default'} format) into {out} ...",
+          file=sys.stderr)
+    compress(SOURCE, str(out), keep=keep, weights_only=True, force=True, quiet=True, dtype=dtype)
     return out
+
+
+def _commit() -> str:
+    try:
+        return subprocess.run(["git", "rev-parse", "HEAD"], capture_output=True, text=True,
+                              cwd=Path(__file__).parent).stdout.strip()
+    except OSError:
+        return "?"
+
+
+def timings(paths: list[str], names: list[str], runs: int, decode_tokens: int, plain: bool) -> dict:
+    models = [load_model(resolve(p)).model for p in paths]
+    if not plain:
+        models = [fuse(m) for m in models]
+    buf = torch.ones(256 << 18)  # 256 MB of float32
+    t = time_decoders(models, runs=runs, decode_tokens=decode_tokens, probe=lambda: measure_bandwidth(runs=3, buffer=buf))
+    bw = statistics.median(t["probe"])
+    cached = t["prompt_tokens"] + t["decode_tokens"] // 2
+    rows = []
+    for j, (name, m) in enumerate(zip(names, models)):
+        prompt, decode = statistics.median(t["prompt"][j]), statistics.median(t["decode"][j])
+        nbytes = decode_bytes(m, cached)
+        rows.append({"model": name, "parameters": sum(p.numel() for p in m.parameters()),
+                     "bytes_per_token": nbytes, "prompt_ms": prompt * 1e3, "decode_ms": decode * 1e3,
+                     "limit_ms": nbytes / bw * 1e3, "decode_runs_ms": [x * 1e3 for x in t["decode"][j]],
+                     "prompt_runs_ms": [x * 1e3 for x in t["prompt"][j]]})
+    d = rows[0]
+    for r in rows:
+        r["prompt_speedup"] = d["prompt_ms"] / r["prompt_ms"]
+        r["decode_speedup"] = d["decode_ms"] / r["decode_ms"]
+        r["limit_speedup"] = d["bytes_per_token"] / r["bytes_per_token"]
+        r["decode_over_limit"] = r["decode_ms"] / r["limit_ms"]
+    return {"runs": runs, "prompt_tokens": t["prompt_tokens"], "decode_tokens": t["decode_tokens"],
+            "fused": not plain, "bandwidth_gb_s": bw / 1e9, "bandwidth_runs_gb_s": [x / 1e9 for x in t["probe"]],
+            "rows": rows}
+
+
+def _ppl(model, ids) -> float:
+    return evaluate.perplexity(fuse(model), ids, context=PPL_CONTEXT)["perplexity"]
+
+
+def disk(work: Path) -> dict:
+    """Bytes on disk of the keep-0.7 copy per format and the perplexity each format costs against float32."""
+    dense = load_model(resolve(SOURCE))
+    original_f32 = 4 * sum(p.numel() for p in dense.model.parameters())
+    text, _ = read_texts([HELDOUT])
+    ids = tokens(dense, text)[:PPL_TOKENS]
+    shape, w, *_ = load_weights(resolve(SOURCE))
+    base = _ppl(build(shape, w), ids)
+    stored = storage.encode_all(w, "int8")
+    w8 = storage.decode(list(stored), stored.__getitem__)
+    dense_int8 = {"perplexity_float32": base, "perplexity_int8": _ppl(build(shape, w8), ids)}
+    del w, w8, stored
+    out = {"original_gguf_bytes": sum(f.stat().st_size for f in dense.source.files),
+           "original_float32_bytes": original_f32, "dense_rounded": dense_int8, "keep_0.7": {}}
+    ppl32 = None
+    for dtype in ("float32", None, "int8"):
+        d = compressed_copy(work, 0.7, dtype)
+        ld = load_model(d)
+        nbytes = sum(f.stat().st_size for f in ld.source.files)
+        ppl = _ppl(ld.model, ids)
+        ppl32 = ppl if dtype == "float32" else ppl32
+        name = read_manifest(d)["dtype"] + (" (default)" if dtype is None else "")
+        out["keep_0.7"][name] = {"bytes": nbytes, "over_original_float32": nbytes / original_f32,
+                                 "perplexity": ppl, "perplexity_over_float32": ppl / ppl32}
+    out["heldout"] = {"text": HELDOUT, "tokens": len(ids), "context": PPL_CONTEXT}
+    return out
+
+
+def table(report: dict) -> str:
+    """The README's markdown tables from a results dict."""
+    sp = report["speed"]
+    tc = report["thread_choice"]
+    lines = [f"`{report['command']}` at {report['commit'][:10]}: {tc['threads']} threads, {tc['wait_policy']} "
+             f"waiting ({tc['reason']}); load average {report['load_before'][0]:.2f} before, "
+             f"{report['load_after'][0]:.2f} after; read bandwidth {sp['bandwidth_gb_s']:.1f} GB/s; median of "
+             f"{sp['runs']} interleaved runs.", "",
+             "| model | prompt 1×256 | speedup | goal | decode ms/token | speedup | goal | bytes-read limit | "
+             "limit speedup | decode / limit |", "|---|---|---|---|---|---|---|---|---|---|"]
+    for r in sp["rows"]:
+        keep = None if r["model"] == "dense" else float(r["model"].split()[-1])
+        gd, gp = GOALS.get(keep, ("", ""))
+        lines.append(f"| {r['model']} | {r['prompt_ms']:.0f} ms | {r['prompt_speedup']:.2f}× | {gp and f'≥ {gp}×'} | "
+                     f"{r['decode_ms']:.1f} | {r['decode_speedup']:.2f}× | {gd and f'≥ {gd}×'} | "
+                     f"{r['limit_ms']:.1f} ms | {r['limit_speedup']:.2f}× | {r['decode_over_limit']:.2f} "
+                     f"(goal ≤ {LIMIT_GOAL}) |")
+    if report.get("disk"):
+        dk = report["disk"]
+        lines += ["", f"Disk, keep 0.7 (plain SVD), against the original's float32 size "
+                  f"({dk['original_float32_bytes'] / 1e6:.0f} MB; the GGUF file is "
+                  f"{dk['original_gguf_bytes'] / 1e6:.1f} MB); perplexity on {dk['heldout']['text']} "
+                  f"({dk['heldout']['tokens']} tokens, context {dk['heldout']['context']}):", "",
+                  "| format | bytes on disk | × original float32 | perplexity | × float32 of the same model |",
+                  "|---|---|---|---|---|"]
+        for name, e in dk["keep_0.7"].items():
+            lines.append(f"| {name} | {e['bytes'] / 1e6:.1f} MB | {e['over_original_float32']:.3f} | "
+                         f"{e['perplexity']:.2f} | {e['perplexity_over_float32']:.4f} |")
+        dr = dk["dense_rounded"]
+        lines += ["", f"The dense model rounded to int8: perplexity {dr['perplexity_int8']:.3f} against "
+                  f"{dr['perplexity_float32']:.3f} in float32 ({dr['perplexity_int8'] / dr['perplexity_float32']:.4f}×)."]
+    return "\n".join(lines)
 
 
 def main():
@@ -52,77 +178,28 @@ def main():
     ap.add_argument("--keeps", default="0.5,0.7")
     ap.add_argument("--runs", type=int, default=7)
     ap.add_argument("--decode-tokens", type=int, default=16)
-    ap.add_argument("--threads", type=int, help="intra-op threads (default: torch's, usually the core count)")
+    ap.add_argument("--threads", help="auto | N | N:active | N:passive (read at start-up; default auto)")
+    ap.add_argument("--plain", action="store_true", help="time the unfused models")
+    ap.add_argument("--disk", action="store_true", help="also bytes on disk and perplexity per format")
     ap.add_argument("--work", default="/tmp/attncompress-speed", help="where the compressed copies are cached")
-    ap.add_argument("--json", action="store_true")
+    ap.add_argument("--results", default=str(RESULTS))
+    ap.add_argument("--table", action="store_true", help="print the README tables from --results and stop")
     args = ap.parse_args()
-    if args.threads:
-        torch.set_num_threads(args.threads)
+    if args.table:
+        print(table(json.loads(Path(args.results).read_text(encoding="utf-8"))))
+        return
     work = Path(args.work)
     work.mkdir(parents=True, exist_ok=True)
     keeps = [float(k) for k in args.keeps.split(",")]
     paths = [SOURCE] + [str(compressed_copy(work, k)) for k in keeps]
-    names = ["dense"] + [f"keep {k:g}" for k in keeps]
-    models = [load_model(resolve(p)).model for p in paths]
-    buf = torch.ones(256 << 18)  # 256 MB of float32
-    t = time_decoders(models, runs=args.runs, decode_tokens=args.decode_tokens,
-                      probe=lambda: measure_bandwidth(runs=3, buffer=buf))
-    bw = statistics.median(t["probe"])
-    cached = t["prompt_tokens"] + t["decode_tokens"] // 2
-    rows = []
-    for j, (name, m) in enumerate(zip(names, models)):
-        prompt, decode = statistics.median(t["prompt"][j]), statistics.median(t["decode"][j])
-        nbytes = decode_bytes(m, cached)
-        rows.append({"model": name, "block_params": block_matrix_params(_canonical(m)),
-                     "bytes_per_token": nbytes, "prompt_ms": prompt * 1e3, "decode_ms": decode * 1e3,
-                     "limit_ms": nbytes / bw * 1e3, "decode_runs_ms": [x * 1e3 for x in t["decode"][j]],
-                     "prompt_runs_ms": [x * 1e3 for x in t["prompt"][j]]})
-    d = rows[0]
-    for r, k in zip(rows, [None] + keeps):
-        r["prompt_speedup"] = d["prompt_ms"] / r["prompt_ms"]
-        r["decode_speedup"] = d["decode_ms"] / r["decode_ms"]
-        r["limit_speedup"] = d["bytes_per_token"] / r["bytes_per_token"]
-        r["decode_over_limit"] = r["decode_ms"] / r["limit_ms"]
-        r["goals"] = None if k is None else {"decode": GOALS.get(k, (None, None))[0],
-                                             "prompt": GOALS.get(k, (None, None))[1], "over_limit": LIMIT_GOAL}
-    report = {"threads": torch.get_num_threads(), "runs": args.runs, "prompt_tokens": t["prompt_tokens"],
-              "decode_tokens": t["decode_tokens"], "bandwidth_gb_s": bw / 1e9,
-              "bandwidth_runs_gb_s": [x / 1e9 for x in t["probe"]], "omp_wait_policy": os.environ["OMP_WAIT_POLICY"],
-              "rows": rows}
-    if args.json:
-        print(json.dumps(report, indent=2))
-        return
-    print(f"SmolLM2-135M float32, our runtime; {report['threads']} threads, median of {args.runs} interleaved runs; "
-          f"prompt 1x{t['prompt_tokens']} (last-position logits), decode {t['decode_tokens']} steps after it")
-    print(f"streaming read bandwidth {bw / 1e9:.1f} GB/s (per run: "
-          + ", ".join(f"{x / 1e9:.1f}" for x in t["probe"]) + ")")
-    head = (f"{'model':<9} {'block params':>12} {'MB/token':>8} {'prompt ms':>9} {'speedup':>7} {'goal':>5} "
-            f"{'decode ms':>9} {'speedup':>7} {'goal':>5} {'limit ms':>8} {'limit x':>7} {'dec/limit':>9} {'goal':>5}")
-    print(head)
-    for r in rows:
-        g = r["goals"] or {}
-
-        def goal(key):
-            return f"{g[key]:.1f}" if g.get(key) else "-"
-        print(f"{r['model']:<9} {r['block_params'] / 1e6:>11.1f}M {r['bytes_per_token'] / 1e6:>8.1f} "
-              f"{r['prompt_ms']:>9.1f} {r['prompt_speedup']:>6.2f}x {goal('prompt'):>5} {r['decode_ms']:>9.1f} "
-              f"{r['decode_speedup']:>6.2f}x {goal('decode'):>5} {r['limit_ms']:>8.1f} {r['limit_speedup']:>6.2f}x "
-              f"{r['decode_over_limit']:>9.2f} {LIMIT_GOAL:>5.1f}")
-    print("decode runs (ms): " + "; ".join(f"{r['model']} " + " ".join(f"{x:.0f}" for x in r["decode_runs_ms"])
-                                          for r in rows))
-
-
-def _canonical(m) -> dict:
-    """Block-matrix tensors of a runtime model under canonical names (for `block_matrix_params`)."""
-    out = {}
-    for i, blk in enumerate(m.blocks):
-        for part, mod in (("attn", blk.attn), ("ff", blk.ff)):
-            for name, p in mod.named_parameters():
-                leaf = name.rsplit(".", 1)
-                suffix = {"weight": "weight", "a": "a", "bt": "b"}.get(leaf[-1])
-                if suffix and "norm" not in name:
-                    out[f"layers.{i}.{part}.{leaf[0]}.{suffix}"] = p
-    return out
+    sp = timings(paths, ["dense"] + [f"keep {k:g}" for k in keeps], args.runs, args.decode_tokens, args.plain)
+    report = {"command": "python benchmarks/speed.py " + " ".join(sys.argv[1:]), "commit": _commit(),
+              "torch": torch.__version__, "thread_choice": CHOICE.to_json(), "threads": torch.get_num_threads(),
+              "load_before": LOAD_BEFORE, "speed": sp, "disk": disk(work) if args.disk else None}
+    report["load_after"] = os.getloadavg()
+    Path(args.results).parent.mkdir(parents=True, exist_ok=True)
+    Path(args.results).write_text(json.dumps(report, indent=2) + "\n", encoding="utf-8")
+    print(table(report))
 
 
 if __name__ == "__main__":

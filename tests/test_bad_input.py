@@ -469,8 +469,8 @@ def _one_shot(d: Path, out: Path, keep: float, texts, n_blocks: int, context: in
     weights = dict(arch.canonical_weights(loaded.source, loaded.walk))
     stats = None
     if texts:
-        blocks, _ = pipeline._calibration_blocks(loaded, texts, context, n_blocks)
-        stats = analysis.collect_stats(loaded.model, blocks)
+        calib = pipeline._calibration(loaded, texts, context, n_blocks)
+        stats = analysis.collect_stats(loaded.model, calib.ids, mask=calib.mask)
     roots = [analysis.layer_roots(stats[i] if stats else None, pipeline.DEFAULT_DAMPING,
                                   with_bias_row=not sh.rotary and sh.qkv_bias,
                                   down=weights[f"layers.{i}.ff.down.weight"]) for i in range(sh.n_layers)]

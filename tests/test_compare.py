@@ -155,10 +155,10 @@ MODEL_KEYS = {"path", "format", "family", "compressed", "parameters", "disk", "r
 RATIO_KEYS = {"parameters", "block_matrices", "disk_bytes", "runtime_bytes", "kv_bytes_per_token"}
 PPL_KEYS = {"kind", "texts", "tokenizer", "tokens", "context", "stride", "a", "b", "nll_a", "nll_b", "ratio",
             "per_text"}
-EMB_KEYS = {"kind", "texts", "tokenizer", "lines", "cosine", "neighbour_agreement"}
+EMB_KEYS = {"kind", "texts", "tokenizer", "lines", "cosine", "neighbour_agreement", "spearman", "cosines", "per_text"}
 SIDE_KEYS = {"a_ms", "b_ms", "speedup", "a_runs_ms", "b_runs_ms"}
 DECODE_KEYS = SIDE_KEYS | {"cached_tokens", "tokens_per_run", "a_bytes", "b_bytes", "a_limit_ms", "b_limit_ms",
-                           "a_over_limit", "b_over_limit", "limit_speedup"}
+                           "a_over_limit", "b_over_limit", "limit_speedup", "a_tokens_per_s", "b_tokens_per_s"}
 
 
 def test_json_has_the_documented_keys(tiny_dirs, compressed, calib_file, lines_file, tmp_path):
@@ -167,14 +167,16 @@ def test_json_has_the_documented_keys(tiny_dirs, compressed, calib_file, lines_f
                                str(calib_file), "--runs", "2", "--json", "--quiet", "--out", str(tmp_path / "rep")])
     assert res.exit_code == 0, res.output
     r = json.loads(res.output)
-    assert r["schema"] == SCHEMA and set(r) == {"schema", "a", "b", "ratios", "quality", "speed"}
+    assert r["schema"] == SCHEMA and set(r) == {"schema", "a", "b", "ratios", "quality", "format_effect", "speed"}
     assert set(r["a"]) == set(r["b"]) == MODEL_KEYS and set(r["ratios"]) == RATIO_KEYS
     assert set(r["a"]["parameters"]) == {"total", "block_matrices", "groups"}
-    assert set(r["a"]["disk"]) == {"bytes", "files", "quantised", "dtypes", "note"}
+    assert set(r["a"]["disk"]) == {"bytes", "files", "quantised", "dtypes", "format", "note"}
+    assert r["a"]["disk"]["format"] == r["b"]["disk"]["format"] == "float32" and r["format_effect"] is None
     assert r["a"]["plan"] is None and set(r["b"]["plan"]) == {"strategy", "keep", "layers", "full"}
     assert set(r["quality"]) == PPL_KEYS
     sp = r["speed"]
-    assert set(sp) == {"threads", "runs", "prompt", "decode", "bandwidth_gb_s"}
+    assert set(sp) == {"threads", "runs", "thread_choice", "load_average_after", "prompt", "decode", "bandwidth_gb_s"}
+    assert set(sp["thread_choice"]) == {"threads", "wait_policy", "reason", "load_average", "cores"}
     assert set(sp["prompt"]) == SIDE_KEYS | {"tokens"} and set(sp["decode"]) == DECODE_KEYS
     assert len(sp["decode"]["a_runs_ms"]) == 2 and sp["prompt"]["tokens"] == 256
     # definition: speedup = time of A / time of B
@@ -187,8 +189,11 @@ def test_json_has_the_documented_keys(tiny_dirs, compressed, calib_file, lines_f
     assert res.exit_code == 0, res.output
     r = json.loads(res.output)
     assert set(r["quality"]) == EMB_KEYS and set(r["quality"]["cosine"]) == {"mean", "p5", "min"}
-    assert set(r["speed"]) == {"threads", "runs", "batch"}
-    assert set(r["speed"]["batch"]) == SIDE_KEYS | {"sentences", "tokens"} and r["speed"]["batch"]["sentences"] == 32
+    assert set(r["speed"]) == {"threads", "runs", "thread_choice", "load_average_after", "batch"}
+    assert set(r["speed"]["batch"]) == SIDE_KEYS | {"sentences", "tokens", "a_sentences_s", "b_sentences_s"}
+    assert r["speed"]["batch"]["sentences"] == 32
+    # definition: sentences per second of a batch of 32 = 32 / its time
+    assert r["speed"]["batch"]["b_sentences_s"] == pytest.approx(32e3 / r["speed"]["batch"]["b_ms"])
     assert r["a"]["kv_bytes_per_token"] is None and r["ratios"]["kv_bytes_per_token"] is None
 
 
@@ -202,3 +207,51 @@ def test_cli_table_and_errors(tiny_dirs, compressed, calib_file):
     assert res.exit_code == 1
     assert res.output.strip().splitlines()[-1].startswith("Error: ") and "decoder" in res.output
 
+
+
+def _numpy_average_ranks(x):
+    """Reference ranks by their definition: 1 + (values below) + (other values equal) / 2, with numpy."""
+    x = np.asarray(x)
+    return 1 + (x[None, :] < x[:, None]).sum(1) + ((x[None, :] == x[:, None]).sum(1) - 1) / 2
+
+
+def test_spearman_matches_a_numpy_reference():
+    from attncompress.evaluate import ranks, spearman
+    g = torch.Generator().manual_seed(1)
+    x = torch.randint(0, 6, (40,), generator=g).double()  # many ties
+    y = x + torch.randint(0, 4, (40,), generator=g).double()
+    # source: scipy is not installed in the venv, so a numpy reference written differently: ranks by counting
+    # (average ranks for ties, as scipy.stats.rankdata's default) and numpy's Pearson correlation of the ranks
+    np.testing.assert_allclose(ranks(x).numpy(), _numpy_average_ranks(x.numpy()), rtol=0, atol=1e-12)
+    want = np.corrcoef(_numpy_average_ranks(x.numpy()), _numpy_average_ranks(y.numpy()))[0, 1]
+    assert spearman(x, y) == pytest.approx(want, abs=1e-12)
+    # identity: a monotone map keeps every rank (ρ = 1), reversing the order gives ρ = −1
+    assert spearman(x, x.exp()) == pytest.approx(1.0) and spearman(x, -x) == pytest.approx(-1.0)
+
+
+def test_embedding_agreement_spearman_of_pairwise_similarities():
+    torch.manual_seed(2)
+    ea = torch.randn(12, 5)
+    eb = ea + 0.5 * torch.randn(12, 5)
+    got = embedding_agreement(ea, eb)
+    a = ea.numpy() / np.linalg.norm(ea.numpy(), axis=1, keepdims=True)
+    b = eb.numpy() / np.linalg.norm(eb.numpy(), axis=1, keepdims=True)
+    iu = np.triu_indices(12, 1)
+    sa, sb = (a @ a.T)[iu], (b @ b.T)[iu]
+    # source: numpy — the 66 pairwise cosines of each model, ranked by counting, correlated by np.corrcoef
+    want = np.corrcoef(_numpy_average_ranks(sa), _numpy_average_ranks(sb))[0, 1]
+    assert got["spearman"] == pytest.approx(want, abs=1e-9)
+    assert len(got["cosines"]) == 12
+
+
+def test_per_text_agreement(tiny_dirs, compressed, lines_file, tmp_path):
+    other = tmp_path / "other.txt"
+    other.write_text("\n".join(lines_file.read_text().splitlines()[::-1][:15]), encoding="utf-8")
+    d = str(tiny_dirs["bert"][0])
+    both = compare(d, str(compressed["bert"]), [str(lines_file), str(other)], speed_runs=0)["quality"]
+    alone = compare(d, str(compressed["bert"]), [str(other)], speed_runs=0)["quality"]
+    assert [t["name"] for t in both["per_text"]] == [lines_file.name, "other.txt"] and alone["per_text"] == []
+    # definition: a text's figures are those of comparing on that text alone
+    for key in ("neighbour_agreement", "spearman"):
+        assert both["per_text"][1][key] == pytest.approx(alone[key], abs=1e-9)
+    assert both["per_text"][1]["cosine"]["mean"] == pytest.approx(alone["cosine"]["mean"], abs=1e-9)

@@ -19,6 +19,7 @@ import torch
 
 from ..errors import CompressError
 from .source import MANIFEST, ST_DTYPES
+from .storage import encode, encode_all
 
 INDEX = "model.safetensors.index.json"
 DEFAULT_SHARD_SIZE = "2GB"
@@ -115,9 +116,12 @@ def atomic_dir(out: str | Path, force: bool = False):
         raise
 
 
-def save_tensors(path: Path, tensors: dict[str, torch.Tensor]) -> None:
-    """One safetensors file, names sorted so identical inputs give identical bytes."""
+def save_tensors(path: Path, tensors: dict[str, torch.Tensor], dtype: str | None = None) -> None:
+    """One safetensors file, names sorted so identical inputs give identical bytes; stored as `dtype`
+    (a format of `io.storage`; None: as given)."""
     from safetensors.torch import save_file
+    if dtype is not None:
+        tensors = encode_all(tensors, dtype)
     save_file({k: tensors[k].contiguous() for k in sorted(tensors)}, str(path), metadata={"format": "pt"})
 
 
@@ -144,13 +148,14 @@ def write_json_atomic(path: str | Path, obj) -> None:
 
 
 def write_model_dir(tmp: Path, weights: dict[str, torch.Tensor] | None, manifest: dict, tokenizer=None,
-                    config: dict | None = None) -> None:
+                    config: dict | None = None, dtype: str | None = None) -> None:
     """Fill a (temporary) directory with the weights, the manifest, the tokenizer and the source config.
 
-    `weights` None: the tensors are already there (written by a `ShardWriter`).
+    `weights` None: the tensors are already there (written by a `ShardWriter`). `dtype`: the storage format
+    of the weights (`io.storage`; None: as given).
     """
     if weights is not None:
-        save_tensors(tmp / "model.safetensors", weights)
+        save_tensors(tmp / "model.safetensors", weights, dtype)
     (tmp / MANIFEST).write_text(dumps(manifest), encoding="utf-8")
     if tokenizer is not None:
         tokenizer.save(str(tmp / "tokenizer.json"))
@@ -191,11 +196,13 @@ class ShardWriter:
     `model.safetensors.index.json`, the layout `open_source` (and the Hugging Face loaders) read.
 
     Memory: nothing is kept but names, shapes and offsets. Disk: the output plus one spooled shard.
-    `metadata` is the header's `__metadata__` (default {"format": "pt"}, as `save_tensors` writes).
+    `metadata` is the header's `__metadata__` (default {"format": "pt"}, as `save_tensors` writes). `dtype`:
+    the storage format tensors are written in (`io.storage`; an int8 matrix becomes two tensors), None: as given.
     """
 
-    def __init__(self, directory: Path, shard_size: int, metadata: dict[str, str] | None = None):
-        self.directory, self.shard_size = Path(directory), shard_size
+    def __init__(self, directory: Path, shard_size: int, metadata: dict[str, str] | None = None,
+                 dtype: str | None = None):
+        self.directory, self.shard_size, self.dtype = Path(directory), shard_size, dtype
         self.metadata = {"format": "pt"} if metadata is None else metadata
         self._done: list[tuple[Path, list[str], int]] = []  # closed shards: (file, names, data bytes)
         self._entries: list[tuple[str, str, list[int], int, int]] = []  # (name, dtype, shape, spool offset, bytes)
@@ -205,7 +212,14 @@ class ShardWriter:
         self._size = 0
 
     def add(self, name: str, tensor: torch.Tensor) -> None:
-        """Append one tensor (written to disk now; the caller may drop it)."""
+        """Append one tensor (written to disk now, in the writer's format; the caller may drop it)."""
+        if self.dtype is None:
+            self._add(name, tensor)
+        else:
+            for n, t in encode(name, tensor, self.dtype):
+                self._add(n, t)
+
+    def _add(self, name: str, tensor: torch.Tensor) -> None:
         assert name not in self._names, f"tensor {name} added twice"
         if tensor.dtype not in _DTYPE_NAMES:
             raise CompressError(f"tensor {name}: dtype {tensor.dtype} cannot be stored in safetensors here")
