@@ -200,7 +200,7 @@ def pair_scores(shape: ModelShape, wq: torch.Tensor, wk: torch.Tensor, root=None
     pair over the calibration tokens, so the score is the product of the query-pair and key-pair RMS
     magnitudes (rotation leaves a pair's magnitude unchanged); with L = I it is a weight-norm score.
     """
-    hd, p = shape.head_dim, shape.head_dim // 2
+    p = shape.head_dim // 2
     wq, wk = wq.double(), wk.double()
     if root is not None:
         wq, wk = wq @ root[0], wk @ root[0]  # (rows, d) @ (d, d)

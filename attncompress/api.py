@@ -7,7 +7,6 @@ from pathlib import Path
 import torch
 
 from . import analysis, evaluate, factorize as fz, generate as gen
-from . import plan as planlib
 from . import compare as comparelib
 from . import compress as pipeline
 from .errors import CompressError

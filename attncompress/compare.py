@@ -15,7 +15,6 @@ from contextlib import contextmanager
 from dataclasses import dataclass
 
 import torch
-import torch.nn.functional as F
 
 from . import evaluate
 from . import threads as threadlib
