@@ -474,11 +474,12 @@ def _cut_layer(an: Analysed, p: planlib.RankPlan, i: int, path, refit_damping: f
     roots = _roots(sh, st, an.damping, w, i, sens)
     new = factorize_layer(sh, w, i, p.ranks(i), roots)
     an.timer.lap("factorise")
+    if path is not None and path.refit:
+        calibrate.refit_layer(sh, w, new, i, cs, roots, refit_damping)
+        gram, cross = path.down_grams(sh, new, i, cs)
+        calibrate.refit_down(w, new, i, gram, cross, roots, refit_damping)
+    fz.balance_layer(sh.n_heads, sh.n_kv_heads, sh.rotary, new, f"layers.{i}.")  # same products, see factorize
     if path is not None:
-        if path.refit:
-            calibrate.refit_layer(sh, w, new, i, cs, roots, refit_damping)
-            gram, cross = path.down_grams(sh, new, i, cs)
-            calibrate.refit_down(w, new, i, gram, cross, roots, refit_damping)
         path.advance(sh, new, i)
         an.timer.lap("refit" if path.refit else "sequential")
     return new

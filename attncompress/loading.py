@@ -7,6 +7,7 @@ from pathlib import Path
 
 
 from . import arch
+from .factorize import balance_layer
 from .errors import CompressError
 from .io.read import open_source
 from .io.source import MANIFEST, TensorSource
@@ -58,13 +59,20 @@ def load_weights(path: str | Path, heads: int | None = None, kv_heads: int | Non
     return w.shape, weights, source, w, None
 
 
-def load_model(path: str | Path, heads: int | None = None, kv_heads: int | None = None) -> Loaded:
+def load_model(path: str | Path, heads: int | None = None, kv_heads: int | None = None,
+               balanced: bool = False) -> Loaded:
     """Open `path` (model directory, compressed directory, .safetensors or .gguf) and build our runtime.
+
+    `balanced`: rebalance every layer's factor pairs first (`factorize.balance_layer`: the same products), as
+    a tune wants them whatever wrote the directory.
 
     Raises:
         CompressError: missing or corrupt files, unknown family, shapes that disagree with the config.
     """
     shape, weights, source, w, manifest = load_weights(path, heads, kv_heads)
+    if balanced:
+        for i in range(shape.n_layers):
+            balance_layer(shape.n_heads, shape.n_kv_heads, shape.rotary, weights, f"layers.{i}.")
     model = build(shape, weights)
     model.eval()
     return Loaded(model, shape, source.tokenizer(), source, w, manifest)

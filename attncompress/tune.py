@@ -744,7 +744,7 @@ def _open_job(src_dir, texts, out, *, context, heldout, eval_texts, eval_tokens,
     if not texts:
         raise CompressError("no training text; give at least one --text FILE")
     manifest = read_manifest(src)
-    loaded = load_model(src)
+    loaded = load_model(src, balanced=True)  # Adam's steps need factors of like scale (factorize.balance_layer)
     max_pos = loaded.shape.max_positions
     if max_pos and context > max_pos:
         raise CompressError(f"--context {context}: longer than the model's {max_pos} positions; give at most {max_pos}")

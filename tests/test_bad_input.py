@@ -19,7 +19,7 @@ import torch
 from click.testing import CliRunner
 from safetensors.torch import load_file, save_file
 
-from attncompress import analysis, arch, plan as planlib, strategies
+from attncompress import analysis, arch, factorize, plan as planlib, strategies
 from attncompress import compress as pipeline
 from attncompress.cli import main
 from attncompress.errors import CompressError
@@ -479,7 +479,9 @@ def _one_shot(d: Path, out: Path, keep: float, texts, n_blocks: int, context: in
     p = pipeline.choose_pairs(sh, p, spectra)
     new = {n: t for n, t in weights.items() if not n.startswith("layers.")}
     for i in range(sh.n_layers):
-        new.update(pipeline.factorize_layer(sh, weights, i, p.ranks(i), roots[i]))
+        layer = pipeline.factorize_layer(sh, weights, i, p.ranks(i), roots[i])
+        factorize.balance_layer(sh.n_heads, sh.n_kv_heads, sh.rotary, layer, f"layers.{i}.")
+        new.update(layer)
     save_file({k: new[k].contiguous() for k in sorted(new)}, str(out), metadata={"format": "pt"})
     return new
 

@@ -5,7 +5,7 @@ import torch
 
 from attncompress.errors import CompressError
 from attncompress.factorize import (
-    augmented_gram, bilinear_factors, fold_value_bias, gram_root, product_sq_norm, qk_bias_form,
+    augmented_gram, balance_layer, balance_pair, bilinear_factors, fold_value_bias, gram_root, product_sq_norm, qk_bias_form,
     singular_values, spectral_factors, split_qk_factors, split_vo_factors, truncation_error_sq,
     vo_group_factors, vo_group_product, vo_group_singular_values, whitened_factors,
 )
@@ -388,3 +388,63 @@ def test_product_sq_norm_value_and_gradients(gen):
     np.testing.assert_allclose(b.grad.numpy(), (2 * bd @ (ad.T @ ad)).numpy(), rtol=1e-4, atol=1e-4)
     with pytest.raises(CompressError, match="same rank"):
         product_sq_norm(ad, bd[:, :2])
+
+
+# ---------------------------------------------------------------- balance
+
+def test_balance_pair_keeps_the_product_and_minimises_the_squared_norms(gen):
+    scale = torch.tensor([1e3, 1e-2, 1.0, 5.0], dtype=torch.float64)
+    a, b = _rand(gen, 9, 4) * scale, _rand(gen, 7, 4) / scale
+    b[:, 2] = 0.0  # a component with a zero side stays as it is
+    a2, b2 = balance_pair(a, b)
+    # source: numpy's matmul of the unbalanced factors
+    np.testing.assert_allclose((a2 @ b2.T).numpy(), a.numpy() @ b.numpy().T, rtol=1e-12, atol=1e-12)
+    na, nb = np.linalg.norm(a.numpy(), axis=0), np.linalg.norm(b.numpy(), axis=0)
+    live = [0, 1, 3]
+    np.testing.assert_allclose(a2.norm(dim=0).numpy()[live], b2.norm(dim=0).numpy()[live], rtol=1e-12)
+    # identity (AM–GM): min over c > 0 of ‖a_j / c‖² + ‖b_j c‖² is 2 ‖a_j‖ ‖b_j‖, reached at the balance
+    got = a2.pow(2).sum(0).numpy()[live] + b2.pow(2).sum(0).numpy()[live]
+    np.testing.assert_allclose(got, 2 * na[live] * nb[live], rtol=1e-12)
+    np.testing.assert_array_equal(a2[:, 2].numpy(), a[:, 2].numpy())
+
+
+def _layer_outputs(t, x, h, g, r, d):
+    """Per-head value paths x vᵀ o_hᵀ, query-key scores (x q_h + bq)(x k_h + bk)ᵀ, and x bᵀ aᵀ, with numpy."""
+    t = {n: v.double().numpy() for n, v in t.items()}
+    x = x.numpy()
+    qpk = h // g
+    vo = [x @ t["L.attn.v.weight"][(i // qpk) * r:(i // qpk + 1) * r].T @ t["L.attn.o.weight"][:, i * r:(i + 1) * r].T
+          for i in range(h)]
+    qs = x @ t["L.attn.q.weight"].T + t["L.attn.q.bias"]
+    ks = x @ t["L.attn.k.weight"].T + t["L.attn.k.bias"]
+    scores = [qs[:, i * r:(i + 1) * r] @ ks[:, i * r:(i + 1) * r].T for i in range(h)]
+    ff = x @ t["L.ff.up.b"] @ t["L.ff.up.a"].T
+    return np.stack(vo), np.stack(scores), ff
+
+
+def test_balance_layer_keeps_every_head_map_and_balances_each_component(gen):
+    h, g, r, d, n = 4, 2, 3, 6, 5
+    scale = (10.0 ** torch.linspace(-3, 3, g * r)).double()
+    t = {"L.attn.v.weight": _rand(gen, g * r, d) * scale[:, None], "L.attn.v.bias": _rand(gen, g * r),
+         "L.attn.o.weight": _rand(gen, d, h * r), "L.attn.q.weight": _rand(gen, h * r, d) * 100,
+         "L.attn.q.bias": _rand(gen, h * r), "L.attn.k.weight": _rand(gen, h * r, d) / 100,
+         "L.attn.k.bias": _rand(gen, h * r), "L.ff.up.a": _rand(gen, 8, r) * 1e3, "L.ff.up.b": _rand(gen, d, r)}
+    t = {k: v.float() for k, v in t.items()}
+    x = _rand(gen, n, d)
+    before = _layer_outputs(t, x, h, g, r, d)
+    bal = dict(t)
+    balance_layer(h, g, False, bal, "L.")
+    for want, got in zip(before, _layer_outputs(bal, x, h, g, r, d)):  # value bias: a component's, scaled with its row
+        # identity: rescaling component j of a product by c and 1/c leaves the product; float32 storage
+        np.testing.assert_allclose(got, want, rtol=1e-4, atol=1e-4 * np.abs(want).max())
+    np.testing.assert_allclose(bal["L.attn.v.bias"].numpy() / bal["L.attn.v.weight"].norm(dim=1).numpy(),
+                               t["L.attn.v.bias"].numpy() / t["L.attn.v.weight"].norm(dim=1).numpy(), rtol=1e-4)
+    o = bal["L.attn.o.weight"].double().reshape(d, g, h // g, r)
+    np.testing.assert_allclose(o.pow(2).sum((0, 2)).sqrt().reshape(-1).numpy(),
+                               bal["L.attn.v.weight"].double().norm(dim=1).numpy(), rtol=1e-5)
+    np.testing.assert_allclose(bal["L.attn.q.weight"].norm(dim=1).numpy(), bal["L.attn.k.weight"].norm(dim=1).numpy(),
+                               rtol=1e-5)
+    np.testing.assert_allclose(bal["L.ff.up.a"].norm(dim=0).numpy(), bal["L.ff.up.b"].norm(dim=0).numpy(), rtol=1e-5)
+    rot = dict(t)
+    balance_layer(h, g, True, rot, "L.")  # rotary query/key rows are source rows: untouched
+    assert rot["L.attn.q.weight"] is t["L.attn.q.weight"] and rot["L.attn.k.weight"] is t["L.attn.k.weight"]
