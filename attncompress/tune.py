@@ -26,7 +26,8 @@ mean-pooled embedding t (the pooling of `embed`), and the student's e is pooled 
     cos: mean over sentences of 1 − cos(e, t)        mse: mean squared error of e/‖e‖ against t
     [+ hidden_weight · Σ‖h − h_T‖² / Σ‖h_T‖² over the real tokens' last hidden states]  [+ penalty]
 
-Teacher targets are computed once per sentence, alone and unpadded, and kept (they are small).
+Teacher targets are computed once per sentence, alone and unpadded, and kept (they are small). The
+held-out slice is `heldout` of the sentences, evenly spaced, as blocks are for a decoder.
 
 Teacher cache. Full teacher logits cost V·s·4 bytes a block (25 MB for SmolLM2 at 128 tokens), so each
 block keeps only its top-k teacher log-probabilities and their token ids (k = 64: 96 KiB a block at
@@ -471,7 +472,7 @@ def repeats(owner: torch.Tensor, n_texts: int, seed: int, steps: int, batch: int
 def _warn_repeats(run: "_Run", job: _Job, s: TuneSettings) -> None:
     """Record each text's repeats in the data description; warn when the run reads more than the text holds.
 
-    Decoders only: an encoder's sentences carry no per-text owner (nor, yet, a held-out slice).
+    Decoders only: an encoder's sentences carry no per-text owner.
     """
     if job.mask is not None:
         return
@@ -709,11 +710,12 @@ class _Job:
     loaded: object  # loading.Loaded
     blocks: torch.Tensor  # (n, s) training blocks, or an encoder's padded sentences
     owner: torch.Tensor  # (n,) which text each training block comes from
-    held: torch.Tensor  # (m, s) held-out blocks of the same texts, never trained on (none for an encoder)
+    held: torch.Tensor  # (m, s) held-out blocks (an encoder's sentences) of the same texts, never trained on
     data: dict  # the manifest's description of the training data
     sets: list  # (file name, description, token ids or (ids, mask) of sentences) per held-out file
     force: bool  # replace an existing output
     mask: torch.Tensor | None = None  # (n, s) an encoder's attention mask; None for a decoder's blocks
+    held_mask: torch.Tensor | None = None  # (m, s) the same for the held-out sentences
 
     @property
     def model(self) -> Transformer:
@@ -752,10 +754,14 @@ def _open_job(src_dir, texts, out, *, context, heldout, eval_texts, eval_tokens,
         ids, mask, described = evaluate.sentence_batch(loaded, texts, context)  # (n, s) each
         sets = [(str(p), d, evaluate.sentence_batch(loaded, [p], context)[:2])
                 for p, d in zip(eval_texts or [], read_texts(eval_texts)[1] if eval_texts else [])]
-        data = {"files": described, "context": context, "sentences": ids.shape[0], "tokens": int(mask.sum()),
+        keep = torch.ones(len(ids), dtype=torch.bool)
+        keep[heldout_indices(len(ids), heldout)] = False
+        data = {"files": described, "context": context, "sentences": int(keep.sum()),
+                "heldout_sentences": int((~keep).sum()), "tokens": int(mask[keep].sum()),
                 "tokens_sha256": hashlib.sha256(ids.numpy().tobytes() + mask.numpy().tobytes()).hexdigest()}
-        owner = torch.zeros(len(ids), dtype=torch.long)
-        return _Job(src, out, ckpt, manifest, loaded, ids, owner, ids[:0], data, sets, force, mask)
+        owner = torch.zeros(int(keep.sum()), dtype=torch.long)
+        return _Job(src, out, ckpt, manifest, loaded, ids[keep], owner, ids[~keep], data, sets, force, mask[keep],
+                    mask[~keep])
     parts, described = [], []
     for path in texts:
         text, (desc,) = read_texts([path])
@@ -882,7 +888,7 @@ class _Run:
     opt: torch.optim.AdamW
     trained: list
     teacher: TeacherCache | None
-    held_teacher: TeacherCache | None  # targets of the held-out blocks
+    held_teacher: TeacherCache | SentenceTeacher | None  # targets of the held-out blocks or sentences
     fingerprint: dict
     rank: int
     world: int
@@ -948,15 +954,7 @@ class _Run:
         for g in self.opt.param_groups:
             g["lr"] = lr
         self.opt.zero_grad(set_to_none=True)
-        if self.job.mask is None:
-            logits = self.net(x)  # (b, s, V)
-            targets = self.teacher.batch(idx) if self.teacher is not None else None
-        else:  # sentences: the batch cut to its longest, padded keys masked
-            n = int(self.job.mask[idx].sum(1).max())
-            targets = self.teacher.batch(idx, n)
-            x = x[:, :n]  # (b, n)
-            logits = self.net(x, attention_mask=targets.mask)  # (b, n, d) last hidden states
-        loss, terms = step_loss(logits, x, targets, self.weights, s.temperature)
+        loss, terms = self._loss(self.net, x, idx, self.teacher, self.job.mask)
         pen = self._penalty(step, loss)
         total = loss if pen is None else loss + s.penalty_every * pen  # lazy: the weight of the skipped steps
         total.backward()
@@ -976,16 +974,26 @@ class _Run:
                 "eval_before": eval_before, "heldout": self.heldout, "best": self.best, "stale": self.stale})
         _barrier(self.world)
 
+    def _loss(self, net, x: torch.Tensor, idx: torch.Tensor, teacher, mask: torch.Tensor | None):
+        """(loss, terms) of rows x (b, s) = items idx of a set whose teacher targets and mask (None: blocks) are given."""
+        if mask is None:
+            logits = net(x)  # (b, s, V)
+            targets = teacher.batch(idx) if teacher is not None else None
+        else:  # sentences: the batch cut to its longest, padded keys masked
+            n = int(mask[idx].sum(1).max())
+            targets = teacher.batch(idx, n)
+            x = x[:, :n]  # (b, n)
+            logits = net(x, attention_mask=targets.mask)  # (b, n, d) last hidden states
+        return step_loss(logits, x, targets, self.weights, self.settings.temperature)
+
     @torch.no_grad()
     def heldout_loss(self) -> float:
-        """The loss without the penalty over the held-out blocks (mean over blocks, `batch` at a time)."""
+        """The loss without the penalty over the held-out blocks or sentences (mean over them, `batch` at a time)."""
         held, b = self.job.held, self.settings.batch
         total = 0.0
         for i in range(0, len(held), b):
             idx = torch.arange(i, min(i + b, len(held)))
-            targets = self.held_teacher.batch(idx) if self.held_teacher is not None else None
-            loss, _ = step_loss(self.job.model(held[idx]), held[idx], targets, self.weights,
-                                self.settings.temperature)
+            loss, _ = self._loss(self.job.model, held[idx], idx, self.held_teacher, self.job.held_mask)
             total += float(loss) * len(idx)
         return total / len(held)
 
@@ -1138,6 +1146,7 @@ def tune(src_dir: str | Path, texts: list[str | Path], out: str | Path, *, steps
         cache = held_cache = None
         if encoder:
             cache = SentenceTeacher(teacher_model, job.blocks, job.mask, settings.hidden_weight > 0)
+            held_cache = SentenceTeacher(teacher_model, job.held, job.held_mask, settings.hidden_weight > 0)
         elif teacher_model is not None:
             touched = min(job.blocks.shape[0], steps * (batch // world))
             cache = TeacherCache(teacher_model, job.blocks, topk, settings.temperature, touched)

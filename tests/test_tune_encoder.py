@@ -143,9 +143,30 @@ def test_the_tune_does_not_depend_on_how_each_product_is_split(sentences, tmp_pa
     emb = {}
     for name in ("c", "skew"):
         tunelib.tune(tmp_path / name, [str(d / "s.txt")], tmp_path / f"t-{name}", steps=4, batch=8, context=32,
-                     lr=1e-3, teacher=str(d / "src"), decay="none", quiet=True)
+                     lr=1e-3, teacher=str(d / "src"), decay="none", heldout=0, quiet=True)
         emb[name] = evaluate.pooled_embeddings(load_model(tmp_path / f"t-{name}").model, ids, mask)
     before = evaluate.pooled_embeddings(load_model(tmp_path / "c").model, ids, mask)
     assert (emb["c"] - before).abs().max() > 1e-3  # the tune did move the model
     # identity: a·c⁻¹, b·c is the same product, so the same model must come out of the same steps
     torch.testing.assert_close(emb["skew"], emb["c"], rtol=1e-4, atol=1e-4)
+
+
+def test_encoder_tune_holds_out_sentences_and_writes_its_best_step(sentences, tmp_path):
+    d = sentences
+    compress(str(d / "src"), str(tmp_path / "c"), keep=0.5, texts=[str(d / "s.txt")], quiet=True)
+    # an lr far too high: the held-out loss rises, so the step written must be the best held-out one
+    r = tunelib.tune(tmp_path / "c", [str(d / "s.txt")], tmp_path / "t", steps=20, batch=8, context=32, lr=0.3,
+                     teacher=str(d / "src"), decay="none", eval_every=5, quiet=True)
+    h = r["heldout"]
+    n = len((d / "s.txt").read_text().splitlines())
+    assert r["data"]["heldout_sentences"] == round(0.1 * n) and r["data"]["sentences"] == n - round(0.1 * n)
+    losses = {e["step"]: e["loss"] for e in h["curve"]}
+    assert h["best_step"] == min(losses, key=losses.get) and h["best_loss"] == min(losses.values())
+    # the written model's held-out loss, recomputed by hand (1 − cosine of the pooled embeddings), is the best one
+    ids, mask = evaluate.encode_batch(tiny_tokenizer(), (d / "s.txt").read_text().splitlines(), 32)
+    held = tunelib.heldout_indices(n, 0.1)
+    want = evaluate.pooled_embeddings(load_model(d / "src").model, ids[held], mask[held])
+    got = evaluate.pooled_embeddings(load_model(tmp_path / "t").model, ids[held], mask[held])
+    # source: torch's F.cosine_similarity
+    loss = float((1 - F.cosine_similarity(got, want, dim=-1)).mean())
+    assert abs(loss - h["best_loss"]) < 1e-4
