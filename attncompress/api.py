@@ -278,7 +278,7 @@ RUN_MIX = 0.5  # weight of the next-token loss in run's tune; the rest is distil
 
 def run(path: str, out: str, *, keep: float, texts: list[str], eval_texts: list[str] | None = None,
         strategy: str | None = None, sequential: bool = True, refit: bool = True, blend: str | None = None,
-        steps: int = 60, batch: int | None = None, context: int = 128, lr: float = 1e-4, mix: float = RUN_MIX,
+        steps: int = 60, batch: int | None = None, context: int = 128, lr: float | None = None, mix: float = RUN_MIX,
         decay: str = DEFAULT_DECAY, decay_coef: float = DEFAULT_DECAY_COEF, seed: int = 0,
         max_eval_tokens: int | None = 4096, force: bool = False, quiet: bool = False) -> dict:
     """Compress, tune and compare in one go; `out` gets `compressed/`, `tuned/` and `report/`.

@@ -201,8 +201,9 @@ def plan(path, keep, strategy, texts, damping, out, as_json):
 @_damp_opt
 @_out_opt("Directory to write.", required=True)
 @_force_opt()
-@click.option("--calib-blocks", default=pipeline.CALIB_BLOCKS, show_default=True,
-              help="Calibration passages to use at most.")
+@click.option("--calib-blocks", type=int, default=None,
+              help=f"Calibration passages to use at most [default: {pipeline.CALIB_BLOCKS} blocks of a decoder, "
+                   f"{pipeline.CALIB_SENTENCES} sentences of an encoder].")
 @click.option("--calib-context", default=pipeline.CALIB_CONTEXT, show_default=True,
               help="Tokens per calibration passage.")
 @click.option("--shard-size", default=DEFAULT_SHARD_SIZE, show_default=True,
@@ -246,7 +247,8 @@ def expand(path, out, force, dtype):
 @click.option("--batch", type=int, help="Blocks (encoders: sentences) per step, over all processes. "
               f"[default: 4 blocks, {tunelib.DEFAULT_SENTENCE_BATCH} sentences]")
 @click.option("--context", default=128, show_default=True, help="Tokens per block (encoders: most tokens per sentence).")
-@click.option("--lr", default=1e-4, show_default=True, help="Peak learning rate (warm-up, then cosine).")
+@click.option("--lr", type=float, default=None, help="Peak learning rate (warm-up, then cosine). "
+              f"[default: {tunelib.DEFAULT_LR:g}, encoders {tunelib.DEFAULT_SENTENCE_LR:g}]")
 @click.option("--seed", default=0, show_default=True, help="Seed of the data order.")
 @click.option("--decay", type=click.Choice(list(tunelib.DECAYS)), default=tunelib.DEFAULT_DECAY, show_default=True,
               help="frobenius: λ·Σ‖A Bᵀ‖² over the factor pairs (mind its scale: see the README); factor: AdamW "
@@ -267,8 +269,9 @@ def expand(path, out, force, dtype):
 @click.option("--train-dense", is_flag=True, help="Also train the feed-forward matrices the plan left dense.")
 @click.option("--embed-loss", type=click.Choice(list(tunelib.EMBED_LOSSES)), default=tunelib.DEFAULT_EMBED_LOSS,
               show_default=True, help="Encoders: 1 − cosine, or squared error, of the normalised pooled embeddings.")
-@click.option("--hidden-weight", default=0.0, show_default=True,
-              help="Encoders: weight of the last hidden states' relative squared error against the teacher's.")
+@click.option("--hidden-weight", type=float, default=None,
+              help="Encoders: weight of the last hidden states' relative squared error against the teacher's "
+                   f"(0: off). [default: {tunelib.DEFAULT_HIDDEN_WEIGHT:g}]")
 @click.option("--heldout", default=tunelib.DEFAULT_HELDOUT, show_default=True,
               help="Fraction of the text's blocks held out; the step of the lowest held-out loss is written (0: off).")
 @click.option("--eval-every", default=tunelib.DEFAULT_EVAL_EVERY, show_default=True,

@@ -1,6 +1,6 @@
 """Embedding agreement of the built-in MiniLM encoder at several budgets, training-free and tuned.
 
-    python benchmarks/encoder_table.py [--keeps 0.9,0.8,0.7,0.5] [--tuned 0.7] [--steps 300] [--lr 1e-3]
+    python benchmarks/encoder_table.py [--keeps 0.9,0.8,0.7,0.5] [--tuned 0.7] [--steps 150] [--lr LR]
                                        [--calib examples/calibration.txt,corpus:pydoc-calibration]
 
 Calibration and tuning text (`--calib`): the demo scenario's handbook pages (examples/calibration.txt), by
@@ -57,8 +57,8 @@ def main():
     ap = argparse.ArgumentParser()
     ap.add_argument("--keeps", default="0.9,0.8,0.7,0.5")
     ap.add_argument("--tuned", default="0.7", help="keeps that are also tuned")
-    ap.add_argument("--steps", type=int, default=300)
-    ap.add_argument("--lr", type=float, default=1e-3)
+    ap.add_argument("--steps", type=int, default=150)
+    ap.add_argument("--lr", type=float, default=None, help="default: the tune's own for an encoder")
     ap.add_argument("--calib", default="examples/calibration.txt,corpus:pydoc-calibration")
     ap.add_argument("--out", default=str(RESULTS / "encoder_table.json"))
     args = ap.parse_args()
@@ -78,8 +78,11 @@ def main():
             if str(keep) in args.tuned.split(","):
                 t = api.tune(tmp / f"c{keep}", calib, tmp / f"t{keep}", steps=args.steps, lr=args.lr,
                              teacher=src, quiet=True)
-                row["tune"] = {"steps": args.steps, "lr": args.lr, "seconds": t["seconds"]["train"],
-                               "loss_first": t["curve"][0]["loss"], "loss_last": t["curve"][-1]["loss"]}
+                row["tune"] = {"steps": args.steps, "lr": t["settings"]["lr"],
+                               "hidden_weight": t["settings"]["hidden_weight"],
+                               "seconds": t["seconds"]["train"] + t["seconds"]["heldout"],
+                               "loss_first": t["curve"][0]["loss"], "loss_last": t["curve"][-1]["loss"],
+                               "heldout": t["heldout"]}
                 row["tuned"] = quality(src, str(tmp / f"t{keep}"), files)
                 speed = api.compare(src, str(tmp / f"t{keep}"), [files["sentences (calibration kind)"]],
                                     speed_runs=5, threads=2)["speed"]["batch"]
