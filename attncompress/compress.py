@@ -164,7 +164,8 @@ CALIB_BLOCKS = 64  # 8192 tokens at 128: measured on SmolLM2, see benchmarks/qua
 # An encoder's calibration is sentences (about 40 tokens each in the bundled texts): 64 of them gave its
 # 1536-wide down matrix a Gram of fewer tokens than dimensions. Measured on the built-in MiniLM at keep 0.7,
 # mean cosine on held-out pydoc / license paragraphs: 64 → 0.907 / 0.824, 256 → 0.921 / 0.855, 512 → 0.925 /
-# 0.856, 1024 → 0.928 / 0.868 (compress 34, 64, 103, 184 s).
+# 0.856, 1024 → 0.928 / 0.868 (compress 34, 64, 103, 184 s; benchmarks/scans/encoder_calibration_scan.py,
+# figures in benchmarks/results/scans.md).
 CALIB_SENTENCES = 256
 
 

@@ -664,10 +664,12 @@ DEFAULT_SENTENCE_BATCH = 32  # sentences per step of an encoder tune (a decoder'
 # A decoder's peak learning rate: measured on the README demo's model (SmolLM2 keep 0.7, canal text + samples,
 # 60 steps, perplexity ratio on 2048 held-out pydoc / license tokens; 3.30× / 5.67× before the tune):
 # 1e-4 → 2.72× / 3.88×, 3e-4 → 2.85× / 4.00× (both held-out losses 2.738 → 2.552, still falling at step 60).
+# (benchmarks/scans/demo_tune_scan.py, figures in benchmarks/results/scans.md)
 DEFAULT_LR = 1e-4
 # An encoder's, and the weight of its hidden-state term: measured on the built-in MiniLM at keep 0.7, 150
 # steps, mean cosine on held-out pydoc paragraphs 0.907 before: lr 1e-3 alone 0.930, lr 1e-3 + hidden 1
 # 0.944, lr 3e-4 + hidden 1 0.950 (lr 1e-3 first raised the held-out loss for 20 steps; 3e-4 did not).
+# (benchmarks/scans/encoder_tune_scan.py, figures in benchmarks/results/scans.md)
 DEFAULT_SENTENCE_LR = 3e-4
 DEFAULT_HIDDEN_WEIGHT = 1.0
 
@@ -1129,16 +1131,15 @@ def tune(src_dir: str | Path, texts: list[str | Path], out: str | Path, *, steps
     if dtype is not None:
         storage.check_dtype(dtype)
     world_size = max(1, int(os.environ.get("WORLD_SIZE", "1")))
+    hidden_weight = DEFAULT_HIDDEN_WEIGHT if hidden_weight is None else hidden_weight
     _check_options(steps, batch or world_size, context, lr or DEFAULT_LR, decay, decay_coef, penalty_every,
-                   temperature, mix, topk, save_every, eval_tokens, world_size, embed_loss,
-                   DEFAULT_HIDDEN_WEIGHT if hidden_weight is None else hidden_weight)
+                   temperature, mix, topk, save_every, eval_tokens, world_size, embed_loss, hidden_weight)
     _check_heldout(heldout, eval_every, patience)
     job = _open_job(src_dir, texts, out, context=context, heldout=heldout, eval_texts=eval_texts,
                     eval_tokens=eval_tokens, resume=resume, force=force)
     encoder = job.mask is not None
     batch = batch or (DEFAULT_SENTENCE_BATCH if encoder else 4)
     lr = lr or (DEFAULT_SENTENCE_LR if encoder else DEFAULT_LR)
-    hidden_weight = DEFAULT_HIDDEN_WEIGHT if hidden_weight is None else hidden_weight
     _check_options(steps, batch, context, lr, decay, decay_coef, penalty_every, temperature, mix, topk, save_every,
                    eval_tokens, world_size)
     teacher_model, t_ident = _load_teacher(teacher, job, mix)
