@@ -13,7 +13,7 @@ from .errors import CompressError
 from .factorize import DEFAULT_DAMPING
 from .io import storage
 from .loading import load_model, load_weights, tokens
-from .model import fuse
+from .model import fuse, halve
 from .builtin import resolve
 from .strategies import DEFAULT_STRATEGY
 from .texts import read_lines, read_texts
@@ -87,12 +87,17 @@ def embed(path: str, text: str, batch: int = 32) -> dict:
 
 
 def generate(path: str, prompts: list[str], *, max_tokens: int = 64, temperature: float = 0.0, top_p: float = 1.0,
-             seed: int = 0, batch: int = 8, quiet: bool = False) -> dict:
-    """Continue each prompt with a decoder (greedy at temperature 0); see `generate.generate_ids`."""
+             seed: int = 0, batch: int = 8, decode_weights: str = "auto", quiet: bool = False) -> dict:
+    """Continue each prompt with a decoder (greedy at temperature 0); see `generate.generate_ids`. The model
+    runs fused, its product weights in `compare.decode_weights_for(decode_weights, rows per step)`."""
     import time
+    weights = comparelib.decode_weights_for(decode_weights, min(batch, len(prompts)))
     loaded = load_model(resolve(path))
     if not loaded.model.is_decoder:
         raise CompressError(f"{loaded.path}: generate needs a decoder; this {loaded.shape.family} model is an encoder")
+    fuse(loaded.model)
+    if weights == "float16":
+        halve(loaded.model)
     ids = [tokens(loaded, p) for p in prompts]
     t0 = time.perf_counter()
     new = gen.generate_ids(loaded.model, ids, max_tokens=max_tokens, temperature=temperature, top_p=top_p, seed=seed,
@@ -102,7 +107,7 @@ def generate(path: str, prompts: list[str], *, max_tokens: int = 64, temperature
     return {"path": str(loaded.path), "prompts": prompts, "completions": [loaded.tokenizer.decode(x) for x in new],
             "prompt_ids": ids, "ids": new, "tokens": n, "seconds": dt, "tokens_per_second": n / dt if dt > 0 else None,
             "settings": {"max_tokens": max_tokens, "temperature": temperature, "top_p": top_p, "seed": seed,
-                         "batch": batch}}
+                         "batch": batch, "decode_weights": weights}}
 
 
 # ------------------------------------------------------------------------------------ spectra and plans

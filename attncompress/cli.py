@@ -96,6 +96,14 @@ def perplexity(path, texts, context, stride, max_tokens, as_json):
                       f"(context {r['context']}, stride {r['stride']})")
 
 
+def _decode_weights_opt(f):
+    return click.option("--decode-weights", type=click.Choice(["auto", "float32", "float16"]), default="auto",
+                        show_default=True,
+                        help="Product weights while decoding: float16 halves the bytes each token reads (torch's "
+                        "16-bit one-row kernel, float32 activations); auto takes it when a step has at most 4 rows. "
+                        "Perplexities are always float32.")(f)
+
+
 @main.command()
 @click.argument("path")
 @click.option("--prompt", "prompts", multiple=True, help="Text to continue (repeatable).")
@@ -105,17 +113,19 @@ def perplexity(path, texts, context, stride, max_tokens, as_json):
 @click.option("--top-p", default=1.0, show_default=True, help="Sample from the smallest set of tokens with this mass.")
 @click.option("--seed", default=0, show_default=True, help="Seed of the sampling (with --batch, fixes the tokens).")
 @click.option("--batch", default=8, show_default=True, help="Prompts of one length decoded together.")
+@_decode_weights_opt
 @_out_opt("Write prompts, completions and token ids as JSON to this file.")
 @_json_opt()
-def generate(path, prompts, prompt_file, max_tokens, temperature, top_p, seed, batch, out, as_json):
+def generate(path, prompts, prompt_file, max_tokens, temperature, top_p, seed, batch, decode_weights, out, as_json):
     """Continue prompts with a decoder, source or compressed (KV cache, batched); tokens/s on stderr."""
     from .texts import read_lines
     prompts = list(prompts) + (_run(read_lines, prompt_file) if prompt_file else [])
     if not prompts:
         raise click.UsageError("give --prompt TEXT or --prompt-file FILE")
     r = _run(api.generate, path, prompts, max_tokens=max_tokens, temperature=temperature, top_p=top_p, seed=seed,
-             batch=batch)
-    click.echo(f"{r['tokens']} tokens in {r['seconds']:.1f}s ({r['tokens_per_second'] or 0:.1f} tokens/s)", err=True)
+             batch=batch, decode_weights=decode_weights)
+    click.echo(f"{r['tokens']} tokens in {r['seconds']:.1f}s ({r['tokens_per_second'] or 0:.1f} tokens/s, "
+               f"{r['settings']['decode_weights']} weights, {threadlib.current().describe()})", err=True)
     if out:
         from .io.write import write_json_atomic
         _run(write_json_atomic, out, r)
@@ -333,17 +343,18 @@ def tune(path, texts, out, steps, batch, context, lr, seed, decay, decay_coef, p
 @click.option("--threads", help="auto, N, or N:active / N:passive: threads and OpenMP waiting [default: auto, from the "
               "load average against the cores; also ATTNCOMPRESS_THREADS]; on a machine shared with other heavy "
               "jobs use 1 or N:passive.")
+@_decode_weights_opt
 @_json_opt("Print the report as JSON (schema attncompress.compare/1).")
 @_out_opt("Write compare.json, report.md and PNG plots to this directory.")
 @_force_opt()
 @click.option("--quiet", is_flag=True, help="No progress lines.")
-def compare(a, b, texts, context, stride, max_tokens, runs, threads, as_json, out, force, quiet):
+def compare(a, b, texts, context, stride, max_tokens, runs, threads, decode_weights, as_json, out, force, quiet):
     """Model A against model B: size, KV cache, perplexity or embedding agreement, and speed side by side."""
     from .report import compare_text, write_compare
     if threads is not None:
         _run(threadlib.parse_spec, threads)
     r = _run(api.compare, a, b, list(texts) or None, out=out, force=force, context=context, stride=stride,
-             max_tokens=max_tokens, speed_runs=runs, quiet=quiet)
+             max_tokens=max_tokens, speed_runs=runs, decode_weights=decode_weights, quiet=quiet)
     note = _run(write_compare, r, out, force) if out else None
     _emit(r, as_json, compare_text(r) + (f"\nwrote {out}/report.md and {out}/compare.json; {note}" if out else ""))
 

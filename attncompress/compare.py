@@ -21,7 +21,7 @@ from . import threads as threadlib
 from .io import storage
 from .errors import CompressError
 from .loading import Loaded, load_weights
-from .model import KVCache, Transformer, build, fuse
+from .model import STEP_ROWS, KVCache, Transformer, build, fuse, halve
 from .builtin import resolve
 from .progress import seconds
 from .evaluate import embedding_agreement
@@ -330,14 +330,36 @@ def _side(times: list[list[float]]) -> dict:
             "a_runs_ms": [t * 1e3 for t in times[0]], "b_runs_ms": [t * 1e3 for t in times[1]]}
 
 
+DECODE_WEIGHTS = ("auto", "float32", "float16")
+
+
+def decode_weights_for(choice: str, rows: int) -> str:
+    """The product weights decoding runs with: float16 (`model.halve`) or float32. `auto` takes float16 when
+    a step has at most `model.STEP_ROWS` rows (one prompt, or a few decoded together), where torch's float16
+    one-row kernel reads the weights about twice as fast on this project's machine (see `model.product`).
+
+    Raises:
+        CompressError: not one of DECODE_WEIGHTS.
+    """
+    if choice not in DECODE_WEIGHTS:
+        raise CompressError(f"--decode-weights: expected one of {', '.join(DECODE_WEIGHTS)}; got {choice!r}")
+    if choice == "auto":
+        return "float16" if rows <= STEP_ROWS else "float32"
+    return choice
+
+
 def speed(a: _Model, b: _Model, runs: int = RUNS, threads: int | None = None,
-          sentences: list[str] | None = None, bandwidth: bool = True) -> dict:
-    """The speed section of the comparison (see `compare` for the keys)."""
+          sentences: list[str] | None = None, bandwidth: bool = True, decode_weights: str = "auto") -> dict:
+    """The speed section of the comparison (see `compare` for the keys). Decoders are timed with their product
+    weights in `decode_weights_for(decode_weights, 1)` (float16: both models are `halve`d in place)."""
     ma, mb = a.loaded.model, b.loaded.model
     with _threads(threads) as n_threads:
         # how the threads were chosen, and the load the timings ran under
         out = {"threads": n_threads, "runs": runs, "thread_choice": threadlib.current().to_json()}
         if ma.is_decoder:
+            out["decode_weights"] = decode_weights_for(decode_weights, 1)
+            if out["decode_weights"] == "float16":
+                halve(ma), halve(mb)
             buf = torch.ones(256 << 18) if bandwidth else None  # 256 MB of float32, far above any cache
             probe = (lambda: measure_bandwidth(runs=3, buffer=buf)) if bandwidth else None
             t = time_decoders([ma, mb], runs=runs, probe=probe)
@@ -379,7 +401,8 @@ def speed(a: _Model, b: _Model, runs: int = RUNS, threads: int | None = None,
 
 def compare(a: str, b: str, texts: list[str] | None = None, lines: list[str] | None = None, *,
             context: int = 512, stride: int | None = None, max_tokens: int | None = None,
-            speed_runs: int | None = RUNS, threads: int | None = None, quiet: bool = True) -> dict:
+            speed_runs: int | None = RUNS, threads: int | None = None, decode_weights: str = "auto",
+            quiet: bool = True) -> dict:
     """Compare two models (an original and its compressed or tuned version, or any two the tool reads).
 
     Args:
@@ -390,6 +413,8 @@ def compare(a: str, b: str, texts: list[str] | None = None, lines: list[str] | N
             scored of each text.
         speed_runs: timed runs per speed figure (median reported); None or 0 skips the speed section.
         threads: intra-op threads for the speed section (default: torch's current setting).
+        decode_weights: product weights the decoders are timed with (see `decode_weights_for`); perplexities
+            are always computed first, in float32.
         quiet: no progress lines.
 
     Returns:
@@ -423,6 +448,7 @@ def compare(a: str, b: str, texts: list[str] | None = None, lines: list[str] | N
           rounded to B's format), "ratio" (rounded / float32), "tokens"}.
         - "speed": null when skipped; else {"threads", "runs", "thread_choice": {"threads", "wait_policy",
           "reason", "load_average", "cores"} (see `threads.decide`), "load_average_after"} and for decoders
+          "decode_weights" ("float16" or "float32": the product weights both models were timed with),
           "prompt": {"tokens", "a_ms", "b_ms", "speedup", "a_runs_ms", "b_runs_ms"} (prefill of 1×tokens,
           last-position logits), "decode": {"cached_tokens", "tokens_per_run", "a_ms", "b_ms" (per token),
           "speedup", "a_runs_ms", "b_runs_ms", "a_bytes", "b_bytes" (bytes read per step), "a_limit_ms",
@@ -436,6 +462,7 @@ def compare(a: str, b: str, texts: list[str] | None = None, lines: list[str] | N
         CompressError: unreadable models; a decoder against an encoder; different vocabularies or tokenizers
             that split the text differently; unreadable text.
     """
+    decode_weights_for(decode_weights, 1)  # a bad choice fails before the slow part
     ma, mb = _open(a, "A"), _open(b, "B")
     sa, sb = ma.loaded.shape, mb.loaded.shape
     if ma.loaded.model.is_decoder != mb.loaded.model.is_decoder:
@@ -463,5 +490,6 @@ def compare(a: str, b: str, texts: list[str] | None = None, lines: list[str] | N
         report["quality"] = embeddings(ma, mb, sets, described)
         sentences = [ln for _, group in sets for ln in group]
     if speed_runs:
-        report["speed"] = speed(ma, mb, runs=speed_runs, threads=threads, sentences=sentences)
+        report["speed"] = speed(ma, mb, runs=speed_runs, threads=threads, sentences=sentences,
+                                decode_weights=decode_weights)
     return report

@@ -46,17 +46,54 @@ class LayerNorm(nn.Module):
 
 
 def gemv_layout(w: torch.Tensor) -> torch.Tensor:
-    """The same (d_out, d_in) matrix, stored column-major when d_out > d_in (a copy), else row-major.
+    """The same (d_out, d_in) matrix stored column-major (a copy): strides (1, d_out).
 
     Why: a one-row product x Wᵀ (a decode step) reads every weight once, and on CPU (MKL, measured on
-    this project's machine) it streams a tall matrix at near the memory bandwidth only when Wᵀ is
-    contiguous, but at about half of it when W is (a dot product per output). For d_out ≤ d_in the
-    row-major layout is as fast or faster; many-row products run at about the same speed either way.
-    Example: (1536, 576) → strides (1, 1536); (576, 1536) → strides (1536, 1).
+    this project's machine with benchmarks/bandwidth.py) it streams W at 20–27 GB/s when Wᵀ is contiguous,
+    against 10–20 GB/s when W is (a dot product per output), for every shape a decode step reads, tall
+    or wide (earlier runs found wide ones as fast either way; the re-run of 2026-12-03 did not).
+    Many-row products run at about the same speed either way. Example: (1536, 576) → strides (1, 1536).
     """
-    if w.dim() == 2 and w.shape[0] > w.shape[1]:
+    if w.dim() == 2:
         return w.T.contiguous().T  # (d_out, d_in) with strides (1, d_out)
     return w.contiguous()
+
+
+# ----------------------------------------------------------------------------------- products of weights
+# `halve` stores a decoder's product weights in float16 for decoding. This CPU's float32 one-row product
+# (MKL) reads weights at about 22 GB/s on one thread and does not gain from a second; torch's float16
+# one-row kernel (float32 accumulation) reads half the bytes and splits the rows over the threads, so a
+# decode step takes about half the time (benchmarks/results/speed.json). Its cost grows with the rows
+# (one pass over W per row), so only products of at most STEP_ROWS rows use it; larger ones widen W to
+# float32 into one reused buffer first (a prompt). Inputs are rounded to float16 for the product,
+# outputs widened back: activations, norms, residuals and the cache stay float32.
+STEP_ROWS = 4
+_WIDE = {"buffer": torch.empty(0), "force": False}
+
+
+def _widened(w: torch.Tensor) -> torch.Tensor:
+    """W in float32, in a buffer reused by the next call (read it at once)."""
+    buf = _WIDE["buffer"]
+    if buf.numel() < w.numel():
+        buf = _WIDE["buffer"] = torch.empty(w.numel())
+    return buf[:w.numel()].view(w.shape).copy_(w)
+
+
+def product(x: torch.Tensor, *weights: torch.Tensor, bias: torch.Tensor | None = None) -> torch.Tensor:
+    """x W₁ᵀ W₂ᵀ … + b for float32 x (.., d_in) and matrices W_i (d_out_i, d_in_i), float32 or float16 (see
+    `halve`); float32 out. A chain of float16 products stays float16 in between (each would round its input
+    to float16 anyway), so a factor pair costs one rounding and one widening.
+    """
+    if weights[0].dtype == torch.float16 and x.numel() <= STEP_ROWS * x.shape[-1] and not _WIDE["force"]:
+        y = x.half()
+        for w in weights:
+            y = F.linear(y, w)
+        y = y.float()
+        return y if bias is None else y.add_(bias)
+    for w in weights[:-1]:
+        x = F.linear(x, w if w.dtype == torch.float32 else _widened(w))
+    w = weights[-1]
+    return F.linear(x, w if w.dtype == torch.float32 else _widened(w), bias)
 
 
 class Linear(nn.Module):
@@ -72,15 +109,14 @@ class Linear(nn.Module):
         return self.weight.numel()
 
     def forward(self, x):
-        return F.linear(x, self.weight, self.bias)
+        return product(x, self.weight, bias=self.bias)
 
 
 class LowRankLinear(nn.Module):
     """y = (x B) Aᵀ + b: two thin matmuls, never the (d_out, d_in) product.
 
-    a: (d_out, r), b: (d_in, r). `b` is kept as `bt`, (r, d_in) row-major, i.e. b itself column-major,
-    and `a` is column-major (`gemv_layout`): each one-row product then streams its factor at the speed
-    the CPU's matrix-vector kernel reaches for that shape.
+    a: (d_out, r), b: (d_in, r). `b` is kept as `bt`, (r, d_in), the weight of the first product; `a` is
+    column-major (`gemv_layout`), and `fuse` lays `bt` out so too for decoding.
     """
 
     def __init__(self, a: torch.Tensor, b: torch.Tensor, bias: torch.Tensor | None = None):
@@ -98,7 +134,7 @@ class LowRankLinear(nn.Module):
         return self.a.numel() + self.bt.numel()
 
     def forward(self, x):
-        return F.linear(F.linear(x, self.bt), self.a, self.bias)  # (.., d_in) @ (d_in, r) @ (r, d_out)
+        return product(x, self.bt, self.a, bias=self.bias)  # (.., d_in) @ (d_in, r) @ (r, d_out)
 
 
 class SharedInput(nn.Module):
@@ -128,7 +164,7 @@ class SharedInput(nn.Module):
         return self.first.numel() + sum(s.params for s in self.seconds if s is not None)
 
     def forward(self, x) -> tuple[torch.Tensor, ...]:
-        h = F.linear(x, self.first, self.bias).split(self.sizes, dim=-1)  # (.., Σ_i) → (.., size_i) views
+        h = product(x, self.first, bias=self.bias).split(self.sizes, dim=-1)  # (.., Σ_i) → (.., size_i) views
         return tuple(y if second is None else second(y) for y, second in zip(h, self.seconds))
 
 
@@ -346,6 +382,7 @@ class Transformer(nn.Module):
         self.embed_norm, self.final_norm = embed_norm, final_norm
         self.blocks = nn.ModuleList(blocks)
         self.lm_head = lm_head  # a Linear, or None when tied to `tokens`
+        self.halved = False  # product weights in float16 (`halve`)
 
     @property
     def kv_widths(self) -> list[tuple[int, int]]:
@@ -359,7 +396,7 @@ class Transformer(nn.Module):
     def hidden(self, ids, *, attention_mask=None, token_types=None, cache: KVCache | None = None, start: int = 0):
         """Final hidden states (b, s, d) for token ids (b, s)."""
         b, s = ids.shape
-        x = F.embedding(ids, self.tokens)  # (b, s, d)
+        x = F.embedding(ids, self.tokens).float()  # (b, s, d); a no-op unless `halve` made the table float16
         if self.positions is not None:
             x = x + self.positions[start:start + s]
         if self.types is not None:
@@ -378,18 +415,29 @@ class Transformer(nn.Module):
 
     def logits(self, x):
         """(b, s, d) hidden → (b, s, vocab)."""
-        return self.lm_head(x) if self.lm_head is not None else F.linear(x, self.tokens)
+        return self.lm_head(x) if self.lm_head is not None else product(x, self.tokens)
 
     def forward(self, ids, **kw):
         x = self.hidden(ids, **kw)
-        return self.logits(x) if self.is_decoder else x
+        if not self.is_decoder:
+            return x
+        y = self.logits(x)
+        if self.halved and not torch.isfinite(y).all():
+            # an input beyond float16's range (65504) in a `halve`d product: the same step again with every
+            # weight widened (a cache rewrites the same positions)
+            _WIDE["force"] = True
+            try:
+                y = self.logits(self.hidden(ids, **kw))
+            finally:
+                _WIDE["force"] = False
+        return y
 
 
 def fuse(model: Transformer) -> Transformer:
     """Merge the projections that share an input, in place, for inference: per block one product for the
-    query, key and value inputs and one for the gate and up inputs (`SharedInput`). Same function, fewer
-    products per token; the separate q, k, v, gate and up modules are removed (training needs them: tune
-    works on an unfused model).
+    query, key and value inputs and one for the gate and up inputs (`SharedInput`), and every product weight
+    laid out column-major (`gemv_layout`). Same function, fewer products per token; the separate q, k, v,
+    gate and up modules are removed (training needs them: tune works on an unfused model).
     """
     for blk in model.blocks:
         a = blk.attn
@@ -399,7 +447,35 @@ def fuse(model: Transformer) -> Transformer:
         if isinstance(blk.ff, GatedMLP) and blk.ff.gate_up is None:
             blk.ff.gate_up = SharedInput([blk.ff.gate, blk.ff.up])
             del blk.ff.gate, blk.ff.up
+    for _, mod, name, w in _product_weights(model):
+        if w.dtype == torch.float32:
+            w.data = gemv_layout(w.data)
     return model
+
+
+def halve(model: Transformer) -> Transformer:
+    """Store every product weight of a fused decoder in float16 (row-major, the layout torch's float16
+    one-row kernel reads fast), in place, for decoding: see `product`. The weights are rounded once
+    (relative error ≤ 2⁻¹¹); norms, biases and position tables stay float32. Inference only.
+    """
+    if not model.is_decoder:
+        return model
+    for _, mod, name, w in _product_weights(model):
+        w.data = w.data.to(torch.float16).contiguous()
+        w.requires_grad_(False)
+    model.halved = True
+    return model
+
+
+def _product_weights(model: Transformer):
+    """(qualified name, module, attribute, parameter) of every matrix a product reads, the tied token table
+    (also the output head) included."""
+    for qual, mod in model.named_modules():
+        names = {Linear: ("weight",), LowRankLinear: ("a", "bt"), SharedInput: ("first",)}.get(type(mod), ())
+        for n in names:
+            yield f"{qual}.{n}" if qual else n, mod, n, getattr(mod, n)
+    if model.is_decoder and model.lm_head is None:
+        yield "tokens", model, "tokens", model.tokens
 
 
 def _linear(w: dict, name: str) -> nn.Module:

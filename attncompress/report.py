@@ -151,7 +151,8 @@ def compare_rows(r: dict) -> list[tuple[str, str, str, str]]:
             p, d = sp["prompt"], sp["decode"]
             rows.append((f"prompt 1x{p['tokens']} (ms)", f"{p['a_ms']:.1f}", f"{p['b_ms']:.1f}",
                          f"speedup {p['speedup']:.2f}x"))
-            rows.append(("decode (ms/token)", f"{d['a_ms']:.1f}", f"{d['b_ms']:.1f}", f"speedup {d['speedup']:.2f}x"))
+            rows.append((f"decode (ms/token, {sp.get('decode_weights', 'float32')} weights)", f"{d['a_ms']:.1f}",
+                         f"{d['b_ms']:.1f}", f"speedup {d['speedup']:.2f}x"))
             rows.append(("generation (tokens/s)", f"{d['a_tokens_per_s']:.1f}", f"{d['b_tokens_per_s']:.1f}", ""))
             if "a_limit_ms" in d:
                 rows.append(("  bytes-read limit (ms/token)", f"{d['a_limit_ms']:.1f}", f"{d['b_limit_ms']:.1f}",

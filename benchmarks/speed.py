@@ -1,11 +1,13 @@
 """Decode and prompt speed, and bytes on disk, of compressed SmolLM2 against the dense model, in one run.
 
-    python benchmarks/speed.py [--keeps 0.5,0.7] [--runs 7] [--threads SPEC] [--plain] [--disk] [--work DIR]
+    python benchmarks/speed.py [--keeps 0.5,0.7] [--runs 7] [--threads SPEC] [--weights float32,float16] [--plain]
+                               [--disk] [--work DIR]
     python benchmarks/speed.py --table        # the README's speed and disk tables from the results file
 
 Every model (the dense built-in SmolLM2 in float32 and one compressed copy per --keep, in the tool's default
-format) is loaded into this one process, fused as the tool runs it (`attncompress.model.fuse`; --plain:
-not), and timed by `attncompress.compare.time_decoders`: per run, a 1×256 prompt (logits of the last position
+format) is loaded into this one process once per kind of product weights (--weights: float32 as loaded, and
+float16 as `compare` and `generate` decode by default, `attncompress.model.halve`), fused as the tool runs it
+(`attncompress.model.fuse`; --plain: not), and timed by `attncompress.compare.time_decoders`: per run, a 1×256 prompt (logits of the last position
 only, as generation needs) and 16 single-token decode steps with the KV cache, the models alternating step
 by step; the median over runs is reported. The streaming read bandwidth is sampled once per run
 (`measure_bandwidth`), so the bytes-read limit of a decode step (every weight read once, plus the cached keys
@@ -45,7 +47,7 @@ from attncompress.compare import decode_bytes, measure_bandwidth, time_decoders 
 from attncompress.compress import compress  # noqa: E402
 from attncompress.io import storage  # noqa: E402
 from attncompress.loading import is_compressed, load_model, load_weights, read_manifest, tokens  # noqa: E402
-from attncompress.model import build, fuse  # noqa: E402
+from attncompress.model import build, fuse, halve  # noqa: E402
 from attncompress.texts import read_texts  # noqa: E402
 
 SOURCE = "builtin:smollm2-135m"
@@ -80,28 +82,36 @@ def _commit() -> str:
         return "?"
 
 
-def timings(paths: list[str], names: list[str], runs: int, decode_tokens: int, plain: bool) -> dict:
-    models = [load_model(resolve(p)).model for p in paths]
-    if not plain:
-        models = [fuse(m) for m in models]
+def timings(paths: list[str], keeps: list[float | None], runs: int, decode_tokens: int, plain: bool,
+            weights: list[str]) -> dict:
+    """Every model once per product-weight kind in `weights` ("float32", "float16": `model.halve`), all timed
+    in one interleaved `time_decoders` call; speedups are against the dense model with the same weights."""
+    models, rows = [], []
+    for kind in weights:
+        for p, keep in zip(paths, keeps):
+            m = load_model(resolve(p)).model
+            m = m if plain else fuse(m)
+            models.append(halve(m) if kind == "float16" else m)
+            rows.append({"model": "dense" if keep is None else f"keep {keep:g}", "keep": keep, "weights": kind})
     buf = torch.ones(256 << 18)  # 256 MB of float32
     t = time_decoders(models, runs=runs, decode_tokens=decode_tokens, probe=lambda: measure_bandwidth(runs=3, buffer=buf))
     bw = statistics.median(t["probe"])
     cached = t["prompt_tokens"] + t["decode_tokens"] // 2
-    rows = []
-    for j, (name, m) in enumerate(zip(names, models)):
+    for j, (r, m) in enumerate(zip(rows, models)):
         prompt, decode = statistics.median(t["prompt"][j]), statistics.median(t["decode"][j])
         nbytes = decode_bytes(m, cached)
-        rows.append({"model": name, "parameters": sum(p.numel() for p in m.parameters()),
-                     "bytes_per_token": nbytes, "prompt_ms": prompt * 1e3, "decode_ms": decode * 1e3,
-                     "limit_ms": nbytes / bw * 1e3, "decode_runs_ms": [x * 1e3 for x in t["decode"][j]],
-                     "prompt_runs_ms": [x * 1e3 for x in t["prompt"][j]]})
-    d = rows[0]
+        r.update({"parameters": sum(p.numel() for p in m.parameters()),
+                  "bytes_per_token": nbytes, "prompt_ms": prompt * 1e3, "decode_ms": decode * 1e3,
+                  "limit_ms": nbytes / bw * 1e3, "decode_runs_ms": [x * 1e3 for x in t["decode"][j]],
+                  "prompt_runs_ms": [x * 1e3 for x in t["prompt"][j]]})
     for r in rows:
+        d = next(x for x in rows if x["keep"] is None and x["weights"] == r["weights"])
         r["prompt_speedup"] = d["prompt_ms"] / r["prompt_ms"]
         r["decode_speedup"] = d["decode_ms"] / r["decode_ms"]
         r["limit_speedup"] = d["bytes_per_token"] / r["bytes_per_token"]
         r["decode_over_limit"] = r["decode_ms"] / r["limit_ms"]
+        r["decode_over_dense_float32"] = r["decode_ms"] / next(
+            x for x in rows if x["keep"] is None and x["weights"] == weights[0])["decode_ms"]
     return {"runs": runs, "prompt_tokens": t["prompt_tokens"], "decode_tokens": t["decode_tokens"],
             "fused": not plain, "bandwidth_gb_s": bw / 1e9, "bandwidth_runs_gb_s": [x / 1e9 for x in t["probe"]],
             "rows": rows}
@@ -147,12 +157,12 @@ def table(report: dict) -> str:
              f"waiting ({tc['reason']}); load average {report['load_before'][0]:.2f} before, "
              f"{report['load_after'][0]:.2f} after; read bandwidth {sp['bandwidth_gb_s']:.1f} GB/s; median of "
              f"{sp['runs']} interleaved runs.", "",
-             "| model | prompt 1×256 | speedup | goal | decode ms/token | speedup | goal | bytes-read limit | "
-             "limit speedup | decode / limit |", "|---|---|---|---|---|---|---|---|---|---|"]
+             "| model | product weights | prompt 1×256 | speedup | goal | decode ms/token | speedup | goal | "
+             "bytes-read limit | limit speedup | decode / limit |", "|---|---|---|---|---|---|---|---|---|---|---|"]
     for r in sp["rows"]:
-        keep = None if r["model"] == "dense" else float(r["model"].split()[-1])
-        gd, gp = GOALS.get(keep, ("", ""))
-        lines.append(f"| {r['model']} | {r['prompt_ms']:.0f} ms | {r['prompt_speedup']:.2f}× | {gp and f'≥ {gp}×'} | "
+        gd, gp = GOALS.get(r.get("keep"), ("", ""))
+        lines.append(f"| {r['model']} | {r.get('weights', 'float32')} | {r['prompt_ms']:.0f} ms | "
+                     f"{r['prompt_speedup']:.2f}× | {gp and f'≥ {gp}×'} | "
                      f"{r['decode_ms']:.1f} | {r['decode_speedup']:.2f}× | {gd and f'≥ {gd}×'} | "
                      f"{r['limit_ms']:.1f} ms | {r['limit_speedup']:.2f}× | {r['decode_over_limit']:.2f} "
                      f"(goal ≤ {LIMIT_GOAL}) |")
@@ -180,6 +190,8 @@ def main():
     ap.add_argument("--decode-tokens", type=int, default=16)
     ap.add_argument("--threads", help="auto | N | N:active | N:passive (read at start-up; default auto)")
     ap.add_argument("--plain", action="store_true", help="time the unfused models")
+    ap.add_argument("--weights", default="float32,float16",
+                    help="product weights to time every model with, comma-separated (float32, float16: model.halve)")
     ap.add_argument("--disk", action="store_true", help="also bytes on disk and perplexity per format")
     ap.add_argument("--work", default="/tmp/attncompress-speed", help="where the compressed copies are cached")
     ap.add_argument("--results", default=str(RESULTS))
@@ -192,7 +204,7 @@ def main():
     work.mkdir(parents=True, exist_ok=True)
     keeps = [float(k) for k in args.keeps.split(",")]
     paths = [SOURCE] + [str(compressed_copy(work, k)) for k in keeps]
-    sp = timings(paths, ["dense"] + [f"keep {k:g}" for k in keeps], args.runs, args.decode_tokens, args.plain)
+    sp = timings(paths, [None] + keeps, args.runs, args.decode_tokens, args.plain, args.weights.split(","))
     report = {"command": "python benchmarks/speed.py " + " ".join(sys.argv[1:]), "commit": _commit(),
               "torch": torch.__version__, "thread_choice": CHOICE.to_json(), "threads": torch.get_num_threads(),
               "load_before": LOAD_BEFORE, "speed": sp, "disk": disk(work) if args.disk else None}

@@ -175,7 +175,8 @@ def test_json_has_the_documented_keys(tiny_dirs, compressed, calib_file, lines_f
     assert r["a"]["plan"] is None and set(r["b"]["plan"]) == {"strategy", "keep", "layers", "full"}
     assert set(r["quality"]) == PPL_KEYS
     sp = r["speed"]
-    assert set(sp) == {"threads", "runs", "thread_choice", "load_average_after", "prompt", "decode", "bandwidth_gb_s"}
+    assert set(sp) == {"threads", "runs", "thread_choice", "load_average_after", "prompt", "decode", "bandwidth_gb_s",
+                       "decode_weights"}
     assert set(sp["thread_choice"]) == {"threads", "wait_policy", "reason", "load_average", "cores"}
     assert set(sp["prompt"]) == SIDE_KEYS | {"tokens"} and set(sp["decode"]) == DECODE_KEYS
     assert len(sp["decode"]["a_runs_ms"]) == 2 and sp["prompt"]["tokens"] == 256

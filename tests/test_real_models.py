@@ -4,7 +4,7 @@ import math
 import pytest
 import torch
 
-from attncompress import corpora, evaluate
+from attncompress import api, corpora, evaluate
 from attncompress.loading import load_model, tokens
 from conftest import minilm_path, reference_nll, require, smollm2_path
 
@@ -55,6 +55,9 @@ def test_smollm2_greedy_generation_matches_transformers(smollm2):
     ours = load_model(smollm2)
     prompts = [tokens(ours, p) for p in ("The capital of France is", "def fibonacci(n):", "Once upon a time")]
     got = generate_ids(ours.model, prompts, max_tokens=24)
+    texts = ["The capital of France is", "def fibonacci(n):", "Once upon a time"]
+    fast = api.generate(str(smollm2), texts, max_tokens=24, quiet=True)  # the command's path: fused, float16 weights
+    assert fast["settings"]["decode_weights"] == "float16"
     ref = tf.AutoModelForCausalLM.from_pretrained(str(smollm2.parent), gguf_file=smollm2.name,
                                                   dtype=torch.float32).eval()
     ref.generation_config.eos_token_id = None  # run to max_new_tokens, as ours does
@@ -62,3 +65,6 @@ def test_smollm2_greedy_generation_matches_transformers(smollm2):
         # source: transformers' GenerationMixin.generate(do_sample=False) on its own GGUF loading
         want = ref.generate(torch.tensor([p]), max_new_tokens=24, do_sample=False, pad_token_id=0)[0, len(p):]
         assert g == want.tolist(), p
+    # the float16 product weights round each weight and product input (≤ 2⁻¹¹ relative): on these prompts
+    # no arg-max changes (a near tie could flip one; then this check needs a tolerance, not a new reference)
+    assert fast["ids"] == got

@@ -91,3 +91,85 @@ def test_fused_decode_path_equals_the_plain_one(tiny_dirs, tmp_path, family):
             assert [k.shape for k in cache.k] == [k.shape for k in KVCache(plain, 2, 16).k]  # reduced widths kept
     # identity: stacking the matrices of one input changes which product computes an output, not its value
     torch.testing.assert_close(got[1], got[0], atol=1e-5, rtol=1e-5)
+
+
+# ------------------------------------------------------------------------- float16 product weights (`halve`)
+
+def _rounded_by_numpy(m):
+    """A float32 copy of a fused model whose product weights numpy rounded to float16 and back."""
+    import copy
+
+    import numpy as np
+    from attncompress.model import _product_weights
+    ref = copy.deepcopy(m)
+    for _, _, _, w in _product_weights(ref):
+        w.data = torch.from_numpy(w.data.numpy().astype(np.float16).astype(np.float32))  # numpy's rounding
+    return ref
+
+
+def _decode(m, ids, prompt: int):
+    cache = KVCache(m, batch=ids.shape[0], max_len=ids.shape[1])
+    out = [m(ids[:, :prompt], cache=cache, start=0)]
+    out += [m(ids[:, i:i + 1], cache=cache, start=i) for i in range(prompt, ids.shape[1])]
+    return torch.cat(out, dim=1)
+
+
+@pytest.mark.parametrize("family", ["llama", "qwen2", "gpt2"])
+def test_halved_weights_are_numpys_float16_rounding(tiny_dirs, tmp_path, family):
+    from attncompress.compress import compress
+    from attncompress.model import STEP_ROWS, _product_weights, halve
+    out = tmp_path / "c"
+    compress(str(tiny_dirs[family][0]), str(out), keep=0.5, weights_only=True, quiet=True)  # factor pairs too
+    m = fuse(load_model(out).model)
+    ref = _rounded_by_numpy(m)
+    halve(m)
+    assert {w.dtype for *_, w in _product_weights(m)} == {torch.float16}
+    ids = torch.randint(0, 96, (STEP_ROWS + 1, 12), generator=torch.Generator().manual_seed(3))
+    with torch.inference_mode():
+        # more rows than STEP_ROWS: every product widens the float16 weights, so the result is float32
+        # arithmetic on numpy's rounding of the weights (source: numpy astype(float16), round to nearest even)
+        torch.testing.assert_close(m(ids), ref(ids), atol=1e-5, rtol=0)
+        # single steps of 2 rows: the float16 kernel, its inputs rounded to float16 too (relative error
+        # ≤ 2⁻¹¹ per product input, IEEE 754 half precision); the cache path must still equal the full pass
+        got, want = _decode(m, ids[:2], 6), ref(ids[:2])
+    scale = want.abs().max()
+    assert (got - want).abs().max() <= 5e-3 * scale, float((got - want).abs().max() / scale)
+    assert (got.argmax(-1) == want.argmax(-1)).float().mean() >= 0.9
+
+
+def test_a_product_input_beyond_float16_range_is_redone_in_float32(tiny_dirs):
+    from attncompress.model import halve
+    m = fuse(load_model(tiny_dirs["llama"][0]).model)
+    with torch.no_grad():
+        m.blocks[0].ff.gate_up.first.mul_(3e3)  # gate and up ~3000× larger: their product (down's input) ≫ 65504
+    ref = _rounded_by_numpy(m)
+    halve(m)
+    ids = torch.randint(0, 96, (1, 8), generator=torch.Generator().manual_seed(4))
+    with torch.inference_mode():
+        got, want = _decode(m, ids, 4), ref(ids)
+    assert torch.isfinite(got).all()
+    # the steps that overflowed in float16 were recomputed with the widened weights: float32 arithmetic
+    torch.testing.assert_close(got[:, 4:], want[:, 4:], atol=1e-3 * float(want.abs().max()), rtol=0)
+
+
+def test_fuse_lays_every_product_weight_out_column_major(tiny_dirs, tmp_path):
+    from attncompress.compress import compress
+    from attncompress.model import _product_weights
+    out = tmp_path / "c"
+    compress(str(tiny_dirs["llama"][0]), str(out), keep=0.5, weights_only=True, quiet=True)
+    m = fuse(load_model(out).model)
+    # benchmarks/bandwidth.py: one-row products read W fastest when Wᵀ is contiguous (strides (1, d_out))
+    assert all(w.T.is_contiguous() for *_, w in _product_weights(m))
+
+
+def test_halved_steps_run_the_float16_kernel_and_prompts_the_float32_one(tiny_dirs, monkeypatch):
+    import torch.nn.functional as F
+    from attncompress.model import STEP_ROWS, halve
+    m = halve(fuse(load_model(tiny_dirs["qwen2"][0]).model))
+    seen, real = [], F.linear
+    monkeypatch.setattr(F, "linear", lambda x, w, b=None: seen.append((x.shape[0] * x.shape[1], x.dtype)) or real(x, w, b))
+    ids = torch.randint(0, 96, (1, 9), generator=torch.Generator().manual_seed(5))
+    with torch.inference_mode():
+        _decode(m, ids, STEP_ROWS + 1)
+    assert {dt for rows, dt in seen if rows > STEP_ROWS} == {torch.float32}  # the prompt: widened weights
+    assert {dt for rows, dt in seen if rows <= STEP_ROWS} == {torch.float16}  # the steps: 16-bit products
