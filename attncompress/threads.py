@@ -5,7 +5,8 @@ hundred small matrix products, and between two of them OpenMP's worker threads e
 or sleep (passive). On an idle machine spinning halves the time of a step (27.7 ms against 53.2 ms with two
 threads); on a machine whose cores are busy with other jobs, spinning threads steal each other's time slices
 and everything slows several-fold. So: use the free cores, spin only when the threads have cores to
-themselves, and sleep otherwise.
+themselves, and sleep otherwise. What is busy is measured at start-up (`busy_cores`: 0.2 s of /proc/stat),
+not read from the load average, which still counts a job that ended a minute ago.
 
 The wait policy is read by the OpenMP runtime when torch is imported: `configure` must run before that
 (the command line imports this module first; it does not import torch itself).
@@ -20,6 +21,7 @@ from __future__ import annotations
 import os
 import re
 from dataclasses import dataclass
+from pathlib import Path
 
 from .errors import CompressError
 
@@ -33,7 +35,7 @@ class Choice:
     threads: int
     wait: str  # "active" | "passive"
     reason: str
-    load: float | None = None  # 1-minute load average when decided
+    load: float | None = None  # busy cores when decided (`busy_cores`), else the 1-minute load average
     cores: int | None = None
 
     def describe(self) -> str:
@@ -59,7 +61,8 @@ def parse_spec(spec: str, where: str = "--threads") -> tuple[int | None, str | N
     return int(m.group(2)), m.group(3)
 
 
-def decide(load: float, cores: int, threads: int | None = None, wait: str | None = None) -> Choice:
+def decide(load: float, cores: int, threads: int | None = None, wait: str | None = None,
+           measure: str = "load") -> Choice:
     """The thread count and wait policy for a machine with `cores` cores whose load average is `load`.
 
     Free cores are those the load does not take: `cores - load`. Without a request, use the free cores
@@ -71,7 +74,7 @@ def decide(load: float, cores: int, threads: int | None = None, wait: str | None
     free = max(0.0, cores - load)
     n = threads if threads is not None else max(1, min(cores, int(free + 0.5)))
     why = [f"{threads} threads requested"] if threads is not None else []
-    busy = f"load {load:.2f} on {cores} cores"
+    busy = f"{measure} {load:.2f} on {cores} cores"
     if wait is not None:
         why.append(f"{wait} waiting requested")
     elif n > 1 and n <= free + 0.5:
@@ -81,6 +84,41 @@ def decide(load: float, cores: int, threads: int | None = None, wait: str | None
         wait = "passive"
         why.append("one thread" if n == 1 else "cores shared")
     return Choice(n, wait, "; ".join(why) + f": {busy}", round(load, 2), cores)
+
+
+SAMPLE_SECONDS = 0.2  # how long `busy_cores` watches the machine at start-up
+
+
+def _cpu_times(stat: str) -> tuple[int, int]:
+    """(busy, total) clock ticks of all CPUs from the text of /proc/stat (its first, aggregate `cpu` line).
+
+    Fields (proc(5)): user nice system idle iowait irq softirq steal guest guest_nice; idle and iowait are
+    not busy, and guest time is already counted in user time.
+    """
+    f = [int(x) for x in stat.split("\n", 1)[0].split()[1:9]]
+    total = sum(f)
+    return total - f[3] - f[4], total
+
+
+def busy_cores(seconds: float = SAMPLE_SECONDS, read=None) -> float | None:
+    """How many cores other processes keep busy now: CPU time used while this process sleeps `seconds`,
+    from two readings of /proc/stat. None where it cannot be read (not Linux).
+
+    Why not the load average alone: it follows the last minute, so a job that has just ended (a set-up, a
+    previous benchmark) still counts, and the tool would run on one sleeping thread on an idle machine.
+    """
+    import time
+    read = read or (lambda: Path("/proc/stat").read_text())
+    try:
+        b0, t0 = _cpu_times(read())
+        time.sleep(seconds)
+        b1, t1 = _cpu_times(read())
+    except (OSError, ValueError, IndexError):
+        return None
+    if t1 <= t0:
+        return None
+    n = len([ln for ln in read().splitlines() if re.match(r"cpu\d+ ", ln)]) or os.cpu_count() or 1
+    return n * (b1 - b0) / (t1 - t0)
 
 
 def _cores() -> int:
@@ -119,7 +157,13 @@ def configure(argv: list[str] | None = None, environ=os.environ) -> Choice:
         threads = int(environ["OMP_NUM_THREADS"])
     if wait is None and environ.get("OMP_WAIT_POLICY", "").lower() in WAIT_POLICIES:
         wait = environ["OMP_WAIT_POLICY"].lower()
-    _CHOICE = decide(os.getloadavg()[0], _cores(), threads, wait)
+    load = None
+    if threads is None or wait is None:  # something to decide: look at what the machine does now
+        load = busy_cores()
+    if load is None:
+        _CHOICE = decide(os.getloadavg()[0], _cores(), threads, wait, "load average")
+    else:
+        _CHOICE = decide(load, _cores(), threads, wait, "load")
     environ["OMP_WAIT_POLICY"] = _CHOICE.wait.upper()
     environ["OMP_NUM_THREADS"] = str(_CHOICE.threads)
     return _CHOICE

@@ -60,3 +60,30 @@ def test_cli_sets_the_choice_before_torch_starts():
     env = {k: v for k, v in os.environ.items() if k not in ("OMP_NUM_THREADS", "OMP_WAIT_POLICY", threads.ENV)}
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, env=env, check=True).stdout
     assert out.split() == ["1", "PASSIVE"]
+
+
+def _stat(busy: int, idle: int, cpus: int = 2) -> str:
+    # the layout of /proc/stat (proc(5)): user nice system idle iowait irq softirq steal guest guest_nice
+    lines = [f"cpu  {busy} 0 0 {idle} 0 0 0 0 0 0"] + [f"cpu{i} 0 0 0 0 0 0 0 0 0 0" for i in range(cpus)]
+    return "\n".join(lines + ["intr 1 2 3", "ctxt 5"]) + "\n"
+
+
+def test_busy_cores_counts_the_ticks_used_while_it_sleeps():
+    # arithmetic on proc(5)'s fields: 30 busy of 200 ticks over 2 CPUs in the window is 0.3 cores busy
+    readings = iter([_stat(1000, 5000), _stat(1030, 5170), _stat(1030, 5170)])
+    assert threads.busy_cores(0.0, read=lambda: next(readings)) == pytest.approx(0.3)
+    readings = iter([_stat(1000, 5000), _stat(1200, 5000), _stat(1200, 5000)])  # every tick busy: both cores
+    assert threads.busy_cores(0.0, read=lambda: next(readings)) == pytest.approx(2.0)
+    assert threads.busy_cores(0.0, read=lambda: "garbage") is None
+
+
+def test_configure_decides_from_what_is_busy_now_not_the_load_average(monkeypatch):
+    monkeypatch.setattr(threads, "_CHOICE", None)
+    monkeypatch.setattr(threads, "_cores", lambda: 2)
+    monkeypatch.setattr(os, "getloadavg", lambda: (1.9, 1.5, 1.0))  # a job that just ended
+    monkeypatch.setattr(threads, "busy_cores", lambda: 0.1)  # the machine now
+    c = threads.configure(["attncompress", "compare"], {})
+    assert (c.threads, c.wait) == (2, "active") and "load 0.10 on 2 cores" in c.reason
+    monkeypatch.setattr(threads, "busy_cores", lambda: None)  # nothing to read: the load average
+    c = threads.configure(["attncompress", "compare"], {})
+    assert (c.threads, c.wait) == (1, "passive") and "load average 1.90" in c.reason
