@@ -4,7 +4,8 @@
 
 Each model (the dense built-in SmolLM2 and the --keeps copies from `benchmarks/speed.py`'s --work folder)
 decodes `--steps` single tokens after a 128-token prompt under torch.profiler, once as loaded ("plain": q, k,
-v, gate and up as separate products) and once after `attncompress.model.fuse` ("fused"). Self CPU time of
+v, gate and up as separate products), once after `attncompress.model.fuse` ("fused") and once fused with
+float16 product weights (`attncompress.model.halve`, what `generate` and `compare` decode with). Self CPU time of
 every aten operation is summed into kinds (products, attention, rotary, norms, cache writes, element-wise,
 views, other); "outside aten" is the wall time of the steps minus that sum (Python and dispatch).
 Writes a markdown table to --out (default benchmarks/results/decode_profile.md) and prints it.
@@ -25,7 +26,7 @@ import torch  # noqa: E402
 from torch.profiler import ProfilerActivity, profile  # noqa: E402
 
 from attncompress.loading import load_model  # noqa: E402
-from attncompress.model import KVCache, fuse  # noqa: E402
+from attncompress.model import KVCache, fuse, halve  # noqa: E402
 from attncompress.builtin import resolve  # noqa: E402
 
 KINDS = [  # (kind, aten operation names); first match wins
@@ -34,6 +35,7 @@ KINDS = [  # (kind, aten operation names); first match wins
     ("rotary", ("aten::roll", "aten::addcmul")),
     ("norms", ("aten::rms_norm", "aten::_fused_rms_norm", "aten::layer_norm", "aten::native_layer_norm")),
     ("cache writes", ("aten::copy_", "aten::select", "aten::narrow")),
+    ("float16 casts", ("aten::_to_copy", "aten::to", "aten::_to_dtype")),
     ("element-wise (residual, act)", ("aten::add", "aten::mul", "aten::silu", "aten::gelu", "aten::embedding")),
     ("views and splits", ("aten::view", "aten::transpose", "aten::split", "aten::as_strided", "aten::t",
                           "aten::slice", "aten::reshape", "aten::split_with_sizes", "aten::unsafe_view",
@@ -63,12 +65,14 @@ def profile_steps(model, steps: int, prompt: int = 128) -> dict:
                 wall = time.perf_counter() - t0
     kinds: dict[str, float] = {}
     products = 0
+    calls = sum(1 for e in prof.events() if e.cpu_parent is None)  # operations called from Python
     for e in prof.key_averages():
         kinds[_kind(e.key)] = kinds.get(_kind(e.key), 0.0) + e.self_cpu_time_total / 1e3 / steps
         if e.key in ("aten::mm", "aten::addmm", "aten::bmm"):
             products += e.count
     kinds["outside aten (Python, dispatch)"] = max(0.0, wall * 1e3 / steps - sum(kinds.values()))
-    return {"kinds": kinds, "products_per_step": products / steps, "wall_ms": wall * 1e3 / steps}
+    return {"kinds": kinds, "products_per_step": products / steps, "wall_ms": wall * 1e3 / steps,
+            "calls_per_step": calls / steps}
 
 
 def main():
@@ -83,14 +87,16 @@ def main():
                                                  for k in args.keeps.split(",")}
     cols = {}
     for name, path in paths.items():
-        for variant in ("plain", "fused"):
+        for variant in ("plain", "fused", "fused, float16"):
             m = load_model(resolve(path)).model
-            if variant == "fused":
+            if variant != "plain":
                 fuse(m)
+            if variant == "fused, float16":
+                halve(m)
             cols[f"{name}, {variant}"] = profile_steps(m, args.steps)
             del m
     kinds = [k for k, _ in KINDS] + ["other", "outside aten (Python, dispatch)"]
-    lines = [f"Decode step of SmolLM2-135M (float32 runtime) after a 128-token prompt, {args.steps} profiled steps; "
+    lines = [f"Decode step of SmolLM2-135M after a 128-token prompt, {args.steps} profiled steps; "
              f"{CHOICE.describe()}; load average at the end {os.getloadavg()[0]:.2f}. ms per step (self CPU time "
              "under torch.profiler, which adds its own overhead).", "",
              "| kind | " + " | ".join(cols) + " |", "|---" * (len(cols) + 1) + "|"]
@@ -99,6 +105,8 @@ def main():
     lines.append("| **wall per step** | " + " | ".join(f"**{c['wall_ms']:.2f}**" for c in cols.values()) + " |")
     lines.append("| matrix products per step | " + " | ".join(f"{c['products_per_step']:.0f}" for c in cols.values())
                  + " |")
+    lines.append("| operations called from Python per step | "
+                 + " | ".join(f"{c['calls_per_step']:.0f}" for c in cols.values()) + " |")
     text = "\n".join(lines) + "\n"
     Path(args.out).parent.mkdir(parents=True, exist_ok=True)
     Path(args.out).write_text(f"# Decode profile\n\n`python benchmarks/decode_profile.py {' '.join(sys.argv[1:])}`\n\n"
