@@ -264,8 +264,7 @@ def decode_bytes(model: Transformer, cached: int) -> int:
 
 def prefill(model: Transformer, ids: torch.Tensor, cache: KVCache) -> torch.Tensor:
     """Process a prompt into the cache and return the logits of its last position only: (b, 1, vocab)."""
-    x = model.hidden(ids, cache=cache, start=0)  # (b, s, d)
-    return model.logits(x[:, -1:])  # generation needs only the next token's distribution
+    return model.last_logits(ids, cache=cache, start=0)  # generation needs only the next token's distribution
 
 
 def time_decoders(models: list[Transformer], runs: int = RUNS, prompt_tokens: int = PROMPT_TOKENS,

@@ -67,7 +67,7 @@ def _decode_batch(model: Transformer, ids: torch.Tensor, new: int, temperature: 
     """`new` tokens after the prompts ids (b, s), the first `greedy` of them arg-max; returns (b, new)."""
     b, s = ids.shape
     cache = KVCache(model, b, s + new)
-    logits = model.logits(model.hidden(ids, cache=cache, start=0)[:, -1])  # (b, V): only the next token matters
+    logits = model.last_logits(ids, cache=cache, start=0)[:, -1]  # (b, V): only the next token matters
     out = []
     for i in range(new):
         nxt = _pick(logits.float(), 0 if i < greedy else temperature, top_p, g)  # (b,)

@@ -418,16 +418,22 @@ class Transformer(nn.Module):
         return self.lm_head(x) if self.lm_head is not None else product(x, self.tokens)
 
     def forward(self, ids, **kw):
-        x = self.hidden(ids, **kw)
         if not self.is_decoder:
-            return x
-        y = self.logits(x)
+            return self.hidden(ids, **kw)
+        return self._guarded(lambda: self.logits(self.hidden(ids, **kw)))
+
+    def last_logits(self, ids, **kw) -> torch.Tensor:
+        """Logits of the last position only, (b, 1, vocab): a prompt's prefill, as generation needs it."""
+        return self._guarded(lambda: self.logits(self.hidden(ids, **kw)[:, -1:]))
+
+    def _guarded(self, logits_of):
+        y = logits_of()
         if self.halved and not torch.isfinite(y).all():
-            # an input beyond float16's range (65504) in a `halve`d product: the same step again with every
+            # an input beyond float16's range (65504) in a `halve`d product: the same pass again with every
             # weight widened (a cache rewrites the same positions)
             _WIDE["force"] = True
             try:
-                y = self.logits(self.hidden(ids, **kw))
+                y = logits_of()
             finally:
                 _WIDE["force"] = False
         return y
