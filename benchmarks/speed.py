@@ -65,16 +65,13 @@ HELDOUT, PPL_TOKENS, PPL_CONTEXT = "corpus:pydoc-heldout", 4096, 512
 CALIBRATION = "corpus:pydoc-calibration"
 
 
-def compressed_copy(work: Path, keep: float, dtype: str | None = None) -> Path:
-    """The plain-SVD copy at `keep` in format `dtype` (None: the tool's default), made once and cached."""
-    out = work / (f"smollm2-keep{keep:g}" + (f"-{dtype}" if dtype else ""))
-    if is_compressed(out):
-        m = read_manifest(out)
-        if m["plan"]["keep"] == keep and (dtype is None or m.get("dtype") == dtype):
-            return out
-    print(f"compressing {SOURCE} at keep {keep:g} (plain SVD, {dtype or 'default'} format) into {out} ...",
-          file=sys.stderr)
-    compress(SOURCE, str(out), keep=keep, weights_only=True, force=True, quiet=True, dtype=dtype)
+def compressed_copy(work: Path, keep: float) -> Path:
+    """The plain-SVD copy at `keep` in the tool's default format, made once and cached."""
+    out = work / f"smollm2-keep{keep:g}"
+    if is_compressed(out) and read_manifest(out)["plan"]["keep"] == keep:
+        return out
+    print(f"compressing {SOURCE} at keep {keep:g} (plain SVD, default format) into {out} ...", file=sys.stderr)
+    compress(SOURCE, str(out), keep=keep, weights_only=True, force=True, quiet=True)
     return out
 
 
