@@ -16,7 +16,9 @@ import click  # noqa: E402
 from . import api, compress as pipeline, tune as tunelib
 from .errors import CompressError
 from .factorize import DEFAULT_DAMPING
+from .compare import DECODE_WEIGHTS
 from .io.storage import DTYPES
+from .model import STEP_ROWS
 from .io.write import DEFAULT_SHARD_SIZE
 from .strategies import DEFAULT_STRATEGY, STRATEGIES, WEIGHTS_ONLY_STRATEGY
 
@@ -97,11 +99,10 @@ def perplexity(path, texts, context, stride, max_tokens, as_json):
 
 
 def _decode_weights_opt(f):
-    return click.option("--decode-weights", type=click.Choice(["auto", "float32", "float16"]), default="auto",
-                        show_default=True,
+    return click.option("--decode-weights", type=click.Choice(DECODE_WEIGHTS), default="auto", show_default=True,
                         help="Product weights while decoding: float16 halves the bytes each token reads (torch's "
-                        "16-bit one-row kernel, float32 activations); auto takes it when a step has at most 4 rows. "
-                        "Perplexities are always float32.")(f)
+                        f"16-bit one-row kernel, float32 activations); auto takes it when a step has at most "
+                        f"{STEP_ROWS} rows. Perplexities are always float32.")(f)
 
 
 @main.command()
@@ -341,7 +342,7 @@ def tune(path, texts, out, steps, batch, context, lr, seed, decay, decay_coef, p
 @click.option("--max-tokens", type=int, help="Score only the first N tokens of the text.")
 @click.option("--runs", default=5, show_default=True, help="Timed runs per speed figure (median); 0 skips speed.")
 @click.option("--threads", help="auto, N, or N:active / N:passive: threads and OpenMP waiting [default: auto, from the "
-              "load average against the cores; also ATTNCOMPRESS_THREADS]; on a machine shared with other heavy "
+              "cores busy at start-up; also ATTNCOMPRESS_THREADS]; on a machine shared with other heavy "
               "jobs use 1 or N:passive.")
 @_decode_weights_opt
 @_json_opt("Print the report as JSON (schema attncompress.compare/1).")

@@ -358,7 +358,8 @@ def speed(a: _Model, b: _Model, runs: int = RUNS, threads: int | None = None,
         if ma.is_decoder:
             out["decode_weights"] = decode_weights_for(decode_weights, 1)
             if out["decode_weights"] == "float16":
-                halve(ma), halve(mb)
+                halve(ma)
+                halve(mb)
             buf = torch.ones(256 << 18) if bandwidth else None  # 256 MB of float32, far above any cache
             probe = (lambda: measure_bandwidth(runs=3, buffer=buf)) if bandwidth else None
             t = time_decoders([ma, mb], runs=runs, probe=probe)

@@ -110,14 +110,15 @@ def busy_cores(seconds: float = SAMPLE_SECONDS, read=None) -> float | None:
     import time
     read = read or (lambda: Path("/proc/stat").read_text())
     try:
-        b0, t0 = _cpu_times(read())
+        first = read()
+        b0, t0 = _cpu_times(first)
         time.sleep(seconds)
         b1, t1 = _cpu_times(read())
     except (OSError, ValueError, IndexError):
         return None
     if t1 <= t0:
         return None
-    n = len([ln for ln in read().splitlines() if re.match(r"cpu\d+ ", ln)]) or os.cpu_count() or 1
+    n = len([ln for ln in first.splitlines() if re.match(r"cpu\d+ ", ln)]) or os.cpu_count() or 1
     return n * (b1 - b0) / (t1 - t0)
 
 

@@ -70,9 +70,9 @@ def _stat(busy: int, idle: int, cpus: int = 2) -> str:
 
 def test_busy_cores_counts_the_ticks_used_while_it_sleeps():
     # arithmetic on proc(5)'s fields: 30 busy of 200 ticks over 2 CPUs in the window is 0.3 cores busy
-    readings = iter([_stat(1000, 5000), _stat(1030, 5170), _stat(1030, 5170)])
+    readings = iter([_stat(1000, 5000), _stat(1030, 5170)])
     assert threads.busy_cores(0.0, read=lambda: next(readings)) == pytest.approx(0.3)
-    readings = iter([_stat(1000, 5000), _stat(1200, 5000), _stat(1200, 5000)])  # every tick busy: both cores
+    readings = iter([_stat(1000, 5000), _stat(1200, 5000)])  # every tick busy: both cores
     assert threads.busy_cores(0.0, read=lambda: next(readings)) == pytest.approx(2.0)
     assert threads.busy_cores(0.0, read=lambda: "garbage") is None
 
