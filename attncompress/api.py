@@ -285,13 +285,15 @@ def run(path: str, out: str, *, keep: float, texts: list[str], eval_texts: list[
         strategy: str | None = None, sequential: bool = True, refit: bool = True, blend: str | None = None,
         steps: int = 60, batch: int | None = None, context: int = 128, lr: float | None = None, mix: float = RUN_MIX,
         decay: str = DEFAULT_DECAY, decay_coef: float = DEFAULT_DECAY_COEF, seed: int = 0,
-        max_eval_tokens: int | None = 4096, force: bool = False, quiet: bool = False) -> dict:
+        max_eval_tokens: int | None = 4096, decode_weights: str = "auto", force: bool = False,
+        quiet: bool = False) -> dict:
     """Compress, tune and compare in one go; `out` gets `compressed/`, `tuned/` and `report/`.
 
     The calibration and tuning text is `texts` plus the `blend` (a key of `BLENDS`; None: `DEFAULT_BLEND` for a
     decoder, `ENCODER_BLEND` for an encoder, which cannot write samples); each `eval_texts` file is scored on its
     own for the original, the compressed and the tuned model (an encoder's compressed model as
-    "compare_compressed"). The whole directory is written atomically: an error or Ctrl-C leaves nothing behind.
+    "compare_compressed"). `decode_weights` is `compare`'s (the product weights both decoders are timed with).
+    The whole directory is written atomically: an error or Ctrl-C leaves nothing behind.
     """
     import sys
     from .io.write import atomic_dir, check_output
@@ -302,6 +304,7 @@ def run(path: str, out: str, *, keep: float, texts: list[str], eval_texts: list[
     if blend not in BLENDS:
         raise CompressError(f"--blend: unknown value {blend!r}; expected one of {', '.join(BLENDS)}")
     check_output(out, force)
+    comparelib.decode_weights_for(decode_weights, 1)  # a bad choice fails before the long work
     read_texts(texts)  # refuse unreadable text before the long work
     if eval_texts:
         read_texts(eval_texts)
@@ -328,7 +331,8 @@ def run(path: str, out: str, *, keep: float, texts: list[str], eval_texts: list[
         timer.lap("tune")
         say("3/3 compare the original with the tuned model, and the compressed model before tuning")
         scored = eval_texts or texts
-        r = comparelib.compare(path, str(tmp / "tuned"), scored, max_tokens=max_eval_tokens, quiet=quiet)
+        r = comparelib.compare(path, str(tmp / "tuned"), scored, max_tokens=max_eval_tokens,
+                               decode_weights=decode_weights, quiet=quiet)
         rc = None
         if r["quality"] and r["quality"]["kind"] == "embedding":
             rc = comparelib.compare(path, str(tmp / "compressed"), scored, speed_runs=0, quiet=quiet)

@@ -378,16 +378,17 @@ def compare(a, b, texts, context, stride, max_tokens, runs, threads, decode_weig
 @click.option("--decay", type=click.Choice(list(tunelib.DECAYS)), default=tunelib.DEFAULT_DECAY, show_default=True,
               help="Penalty while tuning.")
 @click.option("--eval-tokens", default=4096, show_default=True, help="Tokens scored per comparison (0: all).")
+@_decode_weights_opt
 @_out_opt("Directory for compressed/, tuned/ and report/.", required=True)
 @_force_opt()
 @_json_opt("Print the comparison as JSON.")
-def run(path, keep, texts, eval_texts, strategy, sequential, refit, blend, steps, mix, decay, eval_tokens, out, force,
-        as_json):
+def run(path, keep, texts, eval_texts, strategy, sequential, refit, blend, steps, mix, decay, eval_tokens, decode_weights,
+        out, force, as_json):
     """The whole job: compress with calibration, tune the factors, compare before and after."""
     from .report import compare_text, tune_lines
     r = _run(api.run, path, out, keep=keep, texts=list(texts), eval_texts=list(eval_texts) or None, strategy=strategy,
              sequential=sequential, refit=refit, blend=blend, steps=steps, mix=mix, decay=decay,
-             max_eval_tokens=eval_tokens or None, force=force)
+             max_eval_tokens=eval_tokens or None, decode_weights=decode_weights, force=force)
     before = []
     if r["compare_compressed"]:
         q = r["compare_compressed"]["quality"]

@@ -50,8 +50,9 @@ def test_run_reports_original_compressed_and_tuned_for_each_text(tiny_dirs, tmp_
     d, _ = tiny_dirs["llama"]
     train = _text_file(tmp_path / "train.txt", 3, 3000)
     r = api.run(str(d), str(tmp_path / "job"), keep=0.6, texts=[str(train)], eval_texts=[str(t) for t in two_texts],
-                blend="text", steps=3, context=16, max_eval_tokens=300, quiet=True)
+                blend="text", steps=3, context=16, max_eval_tokens=300, decode_weights="float32", quiet=True)
     per = r["compare"]["quality"]["per_text"]
+    assert r["compare"]["speed"]["decode_weights"] == "float32"  # passed through to compare's speed section
     for name in ("compressed", "tuned"):
         api.expand(str(tmp_path / "job" / name), str(tmp_path / f"x-{name}"))
     for entry, text in zip(per, two_texts):
@@ -62,3 +63,12 @@ def test_run_reports_original_compressed_and_tuned_for_each_text(tiny_dirs, tmp_
     md = (tmp_path / "job" / "report" / "report.md").read_text()
     assert "perplexity one.txt" in md and "perplexity two.txt" in md and "compressed, before tuning" in md
     assert set(r["seconds"]) == {"sampling", "compress", "tune", "compare"}
+
+
+def test_run_refuses_a_bad_decode_weights_choice_before_any_work(tiny_dirs, tmp_path):
+    from attncompress.errors import CompressError
+    d, _ = tiny_dirs["llama"]
+    with pytest.raises(CompressError, match="--decode-weights"):
+        api.run(str(d), str(tmp_path / "job"), keep=0.6, texts=["/nonexistent.txt"], decode_weights="int4",
+                quiet=True)
+    assert not (tmp_path / "job").exists()
