@@ -26,7 +26,7 @@ from . import factorize as fz
 from .factorize import Roots
 from .model import Transformer
 from .progress import Progress
-from .sensitivity import LayerSensitivity, output_scale, pair_prices, price, query_drop_price
+from .sensitivity import LayerSensitivity, form_price, output_scale, pair_prices, price
 from .shape import ModelShape
 
 
@@ -258,8 +258,9 @@ def _qk_spectrum(shape: ModelShape, wq, wk, bq, roots: Roots, sens: LayerSensiti
     vals = torch.stack(svs)  # (h, hd)
     gains = vals.pow(2).sum(0)
     if sens is not None:
-        # no score gradient here: all the form's energy is priced as zeroing the query output (module note)
-        gains = gains * (query_drop_price(sens) / float(gains.sum().clamp_min(1e-300)))
+        # no score gradient here: all the form's energy is priced as zeroing the query output, scaled by
+        # FORM_PRICE_SCALE (module note of `sensitivity`)
+        gains = gains * (form_price(sens) / float(gains.sum().clamp_min(1e-300)))
     return {"values": vals, "gains": gains}
 
 

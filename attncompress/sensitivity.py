@@ -18,7 +18,9 @@ Rotary pairs: dropping pair i of group g zeroes rows of q and k, δy = −y on t
 Σ_t (G_tj y_tj)² / (2m) summed over those rows, exactly (no independence assumption). A query-key rank of a
 family without rotary embeddings is priced by the same loss as zeroing the whole query output, spread
 over the form's whitened singular values in proportion to σ_k² (an approximation: the scores have no
-gradient of their own here).
+gradient of their own here), times `FORM_PRICE_SCALE`: measured on the built-in MiniLM, that second-order
+price of the query output makes query-key ranks about 16 times too cheap against the other kinds (see the
+constant).
 
 Decoders: S is the next-token cross-entropy with the text's own tokens (the empirical Fisher). Encoders:
 S = Σ_sentences zᵀ ê with ê the normalised pooled embedding and z ~ N(0, I) drawn once per sentence, so
@@ -34,6 +36,16 @@ import torch.nn.functional as F
 from .shape import ModelShape
 
 KINDS = ("q", "k", "v", "o", "gate", "up", "down")
+# How much more a query-key rank of a family without rotary embeddings costs than the second-order price of
+# the query output says. Measured on the built-in MiniLM (benchmarks/scans/encoder_cut_scan.py, figures in
+# benchmarks/results/scans.md): with the plain price the `loss` strategy cut each head's form to rank 4–10 of
+# 32 and kept every value-output rank; scaling the query-key prices by 4 / 8 / 16 / 32 / 64 / ∞ (never cut)
+# at keep 0.7 moved the training-free mean cosine on license paragraphs 0.855 → 0.872 / 0.878 / 0.880 /
+# 0.874 / 0.872 / 0.868 (pydoc paragraphs 0.921 → 0.938 / 0.943 / 0.944 / 0.941 / 0.938 / 0.934); 16 also
+# helps at keep 0.8 (0.886 → 0.923) and 0.5 (0.761 → 0.776). Why (a reading, not measured): zeroing the
+# queries makes the attention uniform, far from where the quadratic model of the loss holds. Rotary pairs
+# are priced exactly and are not scaled.
+FORM_PRICE_SCALE = 16.0
 _FLOOR = 1e-6  # relative floor of an output scale: a channel no gradient reached keeps a tiny weight
 
 
@@ -138,8 +150,14 @@ def pair_prices(shape: ModelShape, sens: LayerSensitivity) -> torch.Tensor:
 
 
 def query_drop_price(sens: LayerSensitivity) -> float:
-    """Loss price of zeroing the whole query output of the layer: Σ_tj (G_tj q_tj)² / (2m)."""
+    """Second-order loss price of zeroing the whole query output of the layer: Σ_tj (G_tj q_tj)² / (2m)."""
     return float(sens.drop_sq["q"].sum()) / (2 * max(sens.terms, 1))
+
+
+def form_price(sens: LayerSensitivity) -> float:
+    """What a layer's query-key forms (without rotary embeddings) are priced at in all: `FORM_PRICE_SCALE` times
+    `query_drop_price`. Example: Σ (G q)² = 4 over m = 2 terms → 1.0 → 16.0."""
+    return FORM_PRICE_SCALE * query_drop_price(sens)
 
 
 def price(sigma: torch.Tensor, sens: LayerSensitivity) -> torch.Tensor:

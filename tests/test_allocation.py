@@ -155,3 +155,29 @@ def test_plan_prints_the_predicted_rise_per_kind(tiny_dirs, calib_file):
     assert set(s["predicted_rise"]) == {"qk", "vo", "gate", "up", "down"}
     assert all(v >= 0 for v in s["predicted_rise"].values()) and sum(s["predicted_rise"].values()) > 0
     assert sum(s["kept_by_kind"].values()) == s["block_params_kept"]
+
+
+def test_a_query_key_form_without_rotary_is_priced_at_the_scaled_query_drop_price(tiny_dirs):
+    """The gains of each rank are Σ_h σ_k² of the whitened forms Lᵀ W_qʰᵀ W_kʰ L (singular values from numpy,
+    an outside check), scaled to FORM_PRICE_SCALE · Σ (G q)² / (2m) in all."""
+    from attncompress import analysis
+    from attncompress.sensitivity import FORM_PRICE_SCALE
+    m, shape = _runtime(tiny_dirs["bert"][0])
+    assert not shape.rotary
+    h, hd, d = shape.n_heads, shape.head_dim, shape.d_model
+    g = torch.Generator().manual_seed(7)
+    wq, wk = torch.randn(h * hd, d, generator=g), torch.randn(h * hd, d, generator=g)
+    x = torch.randn(64, d, generator=g)
+    root = fz.gram_root((x.T @ x).double(), 0.01)
+    roots = fz.Roots(attn=root, attn_aug=None, ff=None, down=None)
+    drop = torch.rand(h * hd, generator=g, dtype=torch.float64)
+    sens = LayerSensitivity(drop_sq={"q": drop, "k": torch.zeros(h * hd, dtype=torch.float64)}, terms=5)
+    got = analysis._qk_spectrum(shape, wq.double(), wk.double(), None, roots, sens)
+    L = root[0].numpy()
+    sv = np.stack([np.linalg.svd(L.T @ wq[i * hd:(i + 1) * hd].double().numpy().T
+                                 @ wk[i * hd:(i + 1) * hd].double().numpy() @ L, compute_uv=False)[:hd]
+                   for i in range(h)])  # (h, hd)
+    np.testing.assert_allclose(got["values"].numpy(), sv, rtol=1e-8)
+    energy = (sv ** 2).sum(0)
+    total = FORM_PRICE_SCALE * float(drop.sum()) / (2 * 5)
+    np.testing.assert_allclose(got["gains"].numpy(), energy * total / energy.sum(), rtol=1e-8)
