@@ -20,7 +20,8 @@ next tokens of a block, KL all s positions. Without a teacher the loss is CE alo
 
 Encoders (sentence embeddings). The data are sentences (`texts.split_sentences`: one per line, or cut from
 paragraphs), each tokenised with the tokenizer's special tokens, at most `context` tokens, padded; a batch
-is `batch` sentences, cut to its longest. The teacher (always needed) gives each sentence's normalised
+is `batch` sentences, run as `SENTENCE_CHUNKS` sub-batches of similar length, each cut to its longest (the
+same loss as the whole batch padded to its longest, with far less padding). The teacher (always needed) gives each sentence's normalised
 mean-pooled embedding t (the pooling of `embed`), and the student's e is pooled the same way:
 
     cos: mean over sentences of 1 − cos(e, t)        mse: mean squared error of e/‖e‖ against t
@@ -672,6 +673,11 @@ DEFAULT_LR = 1e-4
 # (benchmarks/scans/encoder_tune_scan.py, figures in benchmarks/results/scans.md)
 DEFAULT_SENTENCE_LR = 3e-4
 DEFAULT_HIDDEN_WEIGHT = 1.0
+# Sub-batches of similar length a batch of sentences runs as (`_Run._sentence_loss`), and how each loss term's
+# chunk values add up to the whole batch's: by the chunk's share of the sentences (a mean over sentences), or
+# by its share of the teacher's hidden-state energy (the denominator of `hidden_state_loss`).
+SENTENCE_CHUNKS = 4
+SENTENCE_SHARE = {"cos": "sentences", "mse": "sentences", "hidden": "energy"}
 
 
 def loss_weights(mix: float, teacher: bool) -> dict[str, float]:
@@ -990,12 +996,38 @@ class _Run:
         if mask is None:
             logits = net(x)  # (b, s, V)
             targets = teacher.batch(idx) if teacher is not None else None
-        else:  # sentences: the batch cut to its longest, padded keys masked
-            n = int(mask[idx].sum(1).max())
-            targets = teacher.batch(idx, n)
-            x = x[:, :n]  # (b, n)
-            logits = net(x, attention_mask=targets.mask)  # (b, n, d) last hidden states
+        else:
+            return self._sentence_loss(net, x, idx, teacher, mask)
         return step_loss(logits, x, targets, self.weights, self.settings.temperature)
+
+    def _sentence_loss(self, net, x: torch.Tensor, idx: torch.Tensor, teacher, mask: torch.Tensor):
+        """(loss, terms) of a batch of sentences, run as up to SENTENCE_CHUNKS sub-batches of similar length.
+
+        Sorted by length, each chunk is cut to its own longest sentence, so far less of the work is padding
+        (a batch of 32 of the built-in encoder's tuning sentences is 37% real tokens when padded as one, 75% in 4
+        chunks). Padded keys are masked, so a sentence's hidden states do not depend on its chunk, and the
+        chunks' terms are summed with the weights that make them the whole batch's: the embedding losses (means
+        over sentences) by each chunk's share of the sentences, the hidden-state term (Σ‖h − h_T‖² / Σ‖h_T‖²) by
+        its share of Σ‖h_T‖². One chunk under torchrun (DistributedDataParallel allows one forward per backward).
+        """
+        lengths = mask[idx].sum(1)  # (b,) real tokens of each sentence
+        order = lengths.argsort(descending=True, stable=True)
+        chunks = 1 if self.world > 1 else min(SENTENCE_CHUNKS, len(idx))
+        parts = order.split(math.ceil(len(idx) / chunks))
+        got = []
+        for part in parts:
+            n = int(lengths[part].max())
+            targets = teacher.batch(idx[part], n)
+            xs = x[part, :n]  # (b_c, n)
+            hidden = net(xs, attention_mask=targets.mask)  # (b_c, n, d) last hidden states
+            got.append((len(part), targets, step_loss(hidden, xs, targets, self.weights, self.settings.temperature)[1]))
+        energy = [float(t.hidden[t.mask.bool()].pow(2).sum()) if t.hidden is not None else 0.0 for _, t, _ in got]
+        share = {"sentences": [b / len(idx) for b, _, _ in got],
+                 "energy": [e / max(sum(energy), 1e-30) for e in energy]}
+        terms = {name: sum(w * tm[name] for w, (_, _, tm) in zip(share[SENTENCE_SHARE[name]], got))
+                 for name in got[0][2]}
+        loss = sum(self.weights[name] * term for name, term in terms.items())
+        return loss, terms
 
     @torch.no_grad()
     def heldout_loss(self) -> float:

@@ -170,3 +170,37 @@ def test_encoder_tune_holds_out_sentences_and_writes_its_best_step(sentences, tm
     # source: torch's F.cosine_similarity
     loss = float((1 - F.cosine_similarity(got, want, dim=-1)).mean())
     assert abs(loss - h["best_loss"]) < 1e-4
+
+
+@pytest.mark.parametrize("embed_loss", ["cos", "mse"])
+def test_a_batch_run_in_chunks_of_similar_length_has_the_whole_batch_loss_and_gradient(sentences, tmp_path,
+                                                                                          embed_loss):
+    """`_Run._sentence_loss` (sorted chunks, each cut to its longest) against the batch padded to its longest as
+    one, through the same loss functions (themselves checked against torch above): the same loss, terms and
+    gradients, since padded keys are masked (identity up to float rounding)."""
+    from types import SimpleNamespace
+    d = sentences
+    compress(str(d / "src"), str(tmp_path / "c"), keep=0.3, weights_only=True, quiet=True)  # a loss well above 0
+    student, teacher = load_model(tmp_path / "c").model, load_model(d / "src").model
+    ids, mask = evaluate.encode_batch(tiny_tokenizer(), (d / "s.txt").read_text().splitlines(), 32)
+    cache = tunelib.SentenceTeacher(teacher, ids, mask, True)
+    weights = tunelib.sentence_loss_weights(embed_loss, 0.7)
+    idx = torch.arange(3, 3 + 13)  # 13 sentences: chunks of 4, 4, 4, 1 with lengths that differ
+    assert len(set(mask[idx].sum(1).tolist())) > 3
+    run = SimpleNamespace(world=1, weights=weights, settings=SimpleNamespace(temperature=1.0))
+    params = [p for p in student.parameters() if p.is_floating_point()]
+    for p in params:
+        p.requires_grad_(True)
+    loss, terms = tunelib._Run._sentence_loss(run, student, ids[idx], idx, cache, mask)
+    grads = torch.autograd.grad(loss, params, allow_unused=True)
+    n = int(mask[idx].sum(1).max())
+    tg = cache.batch(idx, n)
+    ref, ref_terms = tunelib.step_loss(student(ids[idx, :n], attention_mask=tg.mask), ids[idx, :n], tg, weights, 1.0)
+    ref_grads = torch.autograd.grad(ref, params, allow_unused=True)
+    assert set(terms) == set(ref_terms) == {embed_loss, "hidden"} and float(ref.detach()) > 1e-4
+    torch.testing.assert_close(loss, ref, rtol=1e-5, atol=1e-7)
+    for name in terms:
+        torch.testing.assert_close(terms[name], ref_terms[name], rtol=1e-5, atol=1e-7)
+    for g, r in zip(grads, ref_grads):
+        if r is not None:
+            torch.testing.assert_close(g, r, rtol=1e-4, atol=1e-6)
