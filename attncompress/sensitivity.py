@@ -14,8 +14,9 @@ Feed-forward and value-output matrices: treating gradients and inputs as indepen
 Σ_t G_tj² δy_tj² ≈ F_j Σ_t δy_tj² with F_j = Σ_t G_tj² / n, and Σ_t δy_tj² = ‖(δW L)_j‖² for the input Gram
 Σ_t x_t x_tᵀ = L Lᵀ. So dropping singular component k of diag(√F) W L (σ̃_k) costs σ̃_k² / (2m), and the
 truncation of that weighted matrix is the best one for this objective (Eckart–Young in weighted norms).
-Rotary pairs: dropping pair i of group g zeroes rows of q and k, δy = −y on them, so its price is
-Σ_t (G_tj y_tj)² / (2m) summed over those rows, exactly (no independence assumption). A query-key rank of a
+Rotary pairs: dropping pair i of group g zeroes rows of q and k, δy = −y on them, so its second-order
+price is Σ_t (G_tj y_tj)² / (2m) summed over those rows (no independence assumption), times
+`PAIR_PRICE_SCALE`: measured on the built-in SmolLM2, that price is too cheap too (see the constant). A query-key rank of a
 family without rotary embeddings is priced by the same loss as zeroing the whole query output, spread
 over the form's whitened singular values in proportion to σ_k² (an approximation: the scores have no
 gradient of their own here), times `FORM_PRICE_SCALE`: measured on the built-in MiniLM, that second-order
@@ -46,6 +47,11 @@ KINDS = ("q", "k", "v", "o", "gate", "up", "down")
 # queries makes the attention uniform, far from where the quadratic model of the loss holds. Rotary pairs
 # are priced exactly and are not scaled.
 FORM_PRICE_SCALE = 16.0
+# The same for a rotary pair (the second-order price of zeroing its query and key rows). Measured on the
+# built-in SmolLM2 at keep 0.7, the README demo's calibration text (benchmarks/scans/demo_cut_scan.py, figures
+# in benchmarks/results/scans.md), perplexity ratio of the cut alone on pydoc / license text: scale 1 →
+# 3.299× / 5.667×, 4 → 3.153× / 5.234×, 16 → 3.188× / 5.277×.
+PAIR_PRICE_SCALE = 4.0
 _FLOOR = 1e-6  # relative floor of an output scale: a channel no gradient reached keeps a tiny weight
 
 
@@ -139,14 +145,17 @@ def output_scale(sens: LayerSensitivity, kind: str) -> torch.Tensor:
 
 
 def pair_prices(shape: ModelShape, sens: LayerSensitivity) -> torch.Tensor:
-    """Loss price of dropping each rotary pair of each key/value group: (g, p).
+    """Loss price of dropping each rotary pair of each key/value group: (g, p), `PAIR_PRICE_SCALE` times the
+    second-order Σ (G y)² / (2m) of its rows.
 
     Rows i and i + p of each head hold pair i (`rotate_half` layout); a group's queries and its key lose the pair.
+    Example: one group of one head, head_dim 4, Σ (G q)² = [1, 2, 3, 4], Σ (G k)² = 0, m = 1 → pairs
+    [(1 + 3) / 2, (2 + 4) / 2] · 4 = [8, 12].
     """
     h, g, p = shape.n_heads, shape.n_kv_heads, shape.head_dim // 2
     q = sens.drop_sq["q"].reshape(h, 2, p).sum(1).reshape(g, shape.q_per_kv, p).sum(1)  # (g, p)
     k = sens.drop_sq["k"].reshape(g, 2, p).sum(1)  # (g, p)
-    return (q + k) / (2 * max(sens.terms, 1))
+    return PAIR_PRICE_SCALE * (q + k) / (2 * max(sens.terms, 1))
 
 
 def query_drop_price(sens: LayerSensitivity) -> float:

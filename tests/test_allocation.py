@@ -181,3 +181,22 @@ def test_a_query_key_form_without_rotary_is_priced_at_the_scaled_query_drop_pric
     energy = (sv ** 2).sum(0)
     total = FORM_PRICE_SCALE * float(drop.sum()) / (2 * 5)
     np.testing.assert_allclose(got["gains"].numpy(), energy * total / energy.sum(), rtol=1e-8)
+
+
+def test_a_rotary_pair_is_priced_at_the_scaled_drop_price_of_its_query_and_key_rows(tiny_dirs):
+    """pair_prices against a loop over heads: pair i of group g is dims i and i + hd/2 of the group's query heads
+    and of its key head (the rotate_half layout), Σ (G y)² over them / (2m), times PAIR_PRICE_SCALE."""
+    from attncompress.sensitivity import PAIR_PRICE_SCALE, pair_prices
+    _, shape = _runtime(tiny_dirs["llama"][0])
+    h, g, hd = shape.n_heads, shape.n_kv_heads, shape.head_dim
+    assert shape.rotary and h > g
+    gen = torch.Generator().manual_seed(3)
+    dq, dk = torch.rand(h * hd, generator=gen, dtype=torch.float64), torch.rand(g * hd, generator=gen, dtype=torch.float64)
+    got = pair_prices(shape, LayerSensitivity(drop_sq={"q": dq, "k": dk}, terms=7))
+    want = torch.zeros(g, hd // 2, dtype=torch.float64)
+    for grp in range(g):
+        for i in range(hd // 2):
+            rows = [i, i + hd // 2]
+            want[grp, i] = sum(dk[grp * hd + r] for r in rows) + sum(
+                dq[head * hd + r] for head in range(grp * (h // g), (grp + 1) * (h // g)) for r in rows)
+    torch.testing.assert_close(got, PAIR_PRICE_SCALE * want / 14)
