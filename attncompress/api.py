@@ -279,28 +279,35 @@ BLENDS = {"text": (), "samples": (gen.SAMPLES,), "pydoc": ("corpus:pydoc-calibra
 DEFAULT_BLEND = "samples"
 ENCODER_BLEND = "pydoc"  # an encoder writes no samples; general text of the bundled corpora instead
 RUN_MIX = 0.5  # weight of the next-token loss in run's tune; the rest is distillation from the source
+# Most tuning steps of `run`: a decoder's 60 (4 blocks of 128 tokens a step; more did not help the README demo,
+# benchmarks/results/scans.md); an encoder's 250 (32 sentences a step, 237 s on 2 cores for the built-in MiniLM,
+# benchmarks/results/encoder_tune_250.md).
+RUN_STEPS = {"decoder": 60, "encoder": 250}
 
 
 def run(path: str, out: str, *, keep: float, texts: list[str], eval_texts: list[str] | None = None,
         strategy: str | None = None, sequential: bool = True, refit: bool = True, blend: str | None = None,
-        steps: int = 60, batch: int | None = None, context: int = 128, lr: float | None = None, mix: float = RUN_MIX,
+        steps: int | None = None, batch: int | None = None, context: int = 128, lr: float | None = None, mix: float = RUN_MIX,
         decay: str = DEFAULT_DECAY, decay_coef: float = DEFAULT_DECAY_COEF, seed: int = 0,
         max_eval_tokens: int | None = 4096, decode_weights: str = "auto", force: bool = False,
         quiet: bool = False) -> dict:
     """Compress, tune and compare in one go; `out` gets `compressed/`, `tuned/` and `report/`.
 
     The calibration and tuning text is `texts` plus the `blend` (a key of `BLENDS`; None: `DEFAULT_BLEND` for a
-    decoder, `ENCODER_BLEND` for an encoder, which cannot write samples); each `eval_texts` file is scored on its
-    own for the original, the compressed and the tuned model (an encoder's compressed model as
-    "compare_compressed"). `decode_weights` is `compare`'s (the product weights both decoders are timed with).
+    decoder, `ENCODER_BLEND` for an encoder, which cannot write samples); `steps` None: `RUN_STEPS` of the kind.
+    Each `eval_texts` file is scored on its own for the original, the compressed and the tuned model (an
+    encoder's compressed model as "compare_compressed"). `decode_weights` is `compare`'s (the product weights both decoders are timed with).
     The whole directory is written atomically: an error or Ctrl-C leaves nothing behind.
     """
     import sys
     from .io.write import atomic_dir, check_output
     from .progress import Timer
     from .report import write_compare
+    decoder = pipeline.open_model(path).shape.is_decoder
     if blend is None:
-        blend = DEFAULT_BLEND if pipeline.open_model(path).shape.is_decoder else ENCODER_BLEND
+        blend = DEFAULT_BLEND if decoder else ENCODER_BLEND
+    if steps is None:
+        steps = RUN_STEPS["decoder" if decoder else "encoder"]
     if blend not in BLENDS:
         raise CompressError(f"--blend: unknown value {blend!r}; expected one of {', '.join(BLENDS)}")
     check_output(out, force)

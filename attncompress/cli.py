@@ -372,7 +372,9 @@ def compare(a, b, texts, context, stride, max_tokens, runs, threads, decode_weig
               help="General text added to --text for calibration and tuning: samples (text the source model writes, "
                    "corpus:samples), pydoc (corpus:pydoc-calibration), both, or none (text). [default: "
                    f"{api.DEFAULT_BLEND} for a decoder, {api.ENCODER_BLEND} for an encoder]")
-@click.option("--steps", default=60, show_default=True, help="Most tuning steps (the held-out loss picks the step).")
+@click.option("--steps", type=int, default=None,
+              help="Most tuning steps (the held-out loss picks the step). [default: "
+                   f"{api.RUN_STEPS['decoder']} for a decoder, {api.RUN_STEPS['encoder']} for an encoder]")
 @click.option("--mix", default=api.RUN_MIX, show_default=True,
               help="Weight of the next-token loss in the tune; 1 − mix goes to distillation from the source.")
 @click.option("--decay", type=click.Choice(list(tunelib.DECAYS)), default=tunelib.DEFAULT_DECAY, show_default=True,

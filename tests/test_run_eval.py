@@ -72,3 +72,21 @@ def test_run_refuses_a_bad_decode_weights_choice_before_any_work(tiny_dirs, tmp_
         api.run(str(d), str(tmp_path / "job"), keep=0.6, texts=["/nonexistent.txt"], decode_weights="int4",
                 quiet=True)
     assert not (tmp_path / "job").exists()
+
+
+@pytest.mark.parametrize("family,kind", [("llama", "decoder"), ("bert", "encoder")])
+def test_run_tunes_for_the_steps_of_the_model_kind_by_default(tiny_dirs, tmp_path, monkeypatch, family, kind):
+    """`run` without steps: RUN_STEPS of the model's kind reaches the tune (stopped there; nothing is left)."""
+    seen = {}
+
+    def stop(*args, **kw):
+        seen["steps"] = kw["steps"]
+        raise RuntimeError("stopped by the test")
+    monkeypatch.setattr(api.tunelib, "tune", stop)
+    d, _ = tiny_dirs[family]
+    train = _text_file(tmp_path / "train.txt", 3, 3000)
+    words = train.read_text().split()
+    train.write_text("\n".join(" ".join(words[i:i + 10]) for i in range(0, len(words), 10)), encoding="utf-8")
+    with pytest.raises(RuntimeError, match="stopped by the test"):
+        api.run(str(d), str(tmp_path / "job"), keep=0.6, texts=[str(train)], blend="text", quiet=True)
+    assert seen["steps"] == api.RUN_STEPS[kind] and not (tmp_path / "job").exists()
