@@ -236,7 +236,7 @@ def expand(path: str, out: str, force: bool = False, dtype: str | None = None) -
     if not is_compressed(path):
         raise CompressError(f"{path}: not a directory written by attncompress compress; nothing to expand")
     if dtype is not None and storage.check_dtype(dtype) == "int8":
-        raise CompressError(f"--dtype int8: expand writes the source family's float layout; choose float32, "
+        raise CompressError("--dtype int8: expand writes the source family's float layout; choose float32, "
                             "bfloat16 or float16 (or use the compressed directory, which can be int8)")
     shape, weights, source, _, manifest = load_weights(path)
     dtype = dtype or storage.default_dtype(source, manifest)

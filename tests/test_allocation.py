@@ -6,7 +6,7 @@ import pytest
 import torch
 from click.testing import CliRunner
 
-from attncompress import calibrate, factorize as fz, plan as planlib
+from attncompress import calibrate, factorize as fz
 from attncompress.cli import main
 from attncompress.compress import compress
 from attncompress.loading import load_model, load_weights

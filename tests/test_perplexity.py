@@ -4,7 +4,6 @@ import math
 
 import pytest
 import torch
-import transformers as tf
 from click.testing import CliRunner
 from tokenizers import Tokenizer
 
