@@ -16,7 +16,7 @@ Feed-forward and value-output matrices: treating gradients and inputs as indepen
 truncation of that weighted matrix is the best one for this objective (Eckart–Young in weighted norms).
 Rotary pairs: dropping pair i of group g zeroes rows of q and k, δy = −y on them, so its second-order
 price is Σ_t (G_tj y_tj)² / (2m) summed over those rows (no independence assumption), times
-`PAIR_PRICE_SCALE`: measured on the built-in SmolLM2, that price is too cheap too (see the constant). A query-key rank of a
+`PAIR_PRICE_SCALE` (1: a larger one helped SmolLM2's cut alone and hurt it after the tune, see the constant). A query-key rank of a
 family without rotary embeddings is priced by the same loss as zeroing the whole query output, spread
 over the form's whitened singular values in proportion to σ_k² (an approximation: the scores have no
 gradient of their own here), times `FORM_PRICE_SCALE`: measured on the built-in MiniLM, that second-order
@@ -50,8 +50,11 @@ FORM_PRICE_SCALE = 16.0
 # The same for a rotary pair (the second-order price of zeroing its query and key rows). Measured on the
 # built-in SmolLM2 at keep 0.7, the README demo's calibration text (benchmarks/scans/demo_cut_scan.py, figures
 # in benchmarks/results/scans.md), perplexity ratio of the cut alone on pydoc / license text: scale 1 →
-# 3.299× / 5.667×, 4 → 3.153× / 5.234×, 16 → 3.188× / 5.277×.
-PAIR_PRICE_SCALE = 4.0
+# 3.299× / 5.667×, 4 → 3.153× / 5.234×, 16 → 3.188× / 5.277×. But after the demo's tune the scale-4 cut came
+# out worse: 3.076× / 3.462× on 4096 tokens against 2.989× / 3.316× at scale 1 (the README's first command in a
+# fresh clone, benchmarks/results/readme_demo_pair4.txt against readme_demo.txt): the pairs it keeps cost
+# feed-forward ranks, which the tune wins back less well. So a decoder's pairs keep their second-order price.
+PAIR_PRICE_SCALE = 1.0
 _FLOOR = 1e-6  # relative floor of an output scale: a channel no gradient reached keeps a tiny weight
 
 
@@ -150,7 +153,7 @@ def pair_prices(shape: ModelShape, sens: LayerSensitivity) -> torch.Tensor:
 
     Rows i and i + p of each head hold pair i (`rotate_half` layout); a group's queries and its key lose the pair.
     Example: one group of one head, head_dim 4, Σ (G q)² = [1, 2, 3, 4], Σ (G k)² = 0, m = 1 → pairs
-    [(1 + 3) / 2, (2 + 4) / 2] · 4 = [8, 12].
+    [(1 + 3) / 2, (2 + 4) / 2] = [2, 3] (times PAIR_PRICE_SCALE).
     """
     h, g, p = shape.n_heads, shape.n_kv_heads, shape.head_dim // 2
     q = sens.drop_sq["q"].reshape(h, 2, p).sum(1).reshape(g, shape.q_per_kv, p).sum(1)  # (g, p)
