@@ -287,7 +287,8 @@ RUN_STEPS = {"decoder": 60, "encoder": 250}
 
 def run(path: str, out: str, *, keep: float, texts: list[str], eval_texts: list[str] | None = None,
         strategy: str | None = None, sequential: bool = True, refit: bool = True, blend: str | None = None,
-        steps: int | None = None, batch: int | None = None, context: int = 128, lr: float | None = None, mix: float = RUN_MIX,
+        steps: int | None = None, batch: int | None = None, context: int = 128, lr: float | None = None,
+        mix: float = RUN_MIX,
         decay: str = DEFAULT_DECAY, decay_coef: float = DEFAULT_DECAY_COEF, seed: int = 0,
         max_eval_tokens: int | None = 4096, decode_weights: str = "auto", force: bool = False,
         quiet: bool = False) -> dict:
@@ -296,7 +297,8 @@ def run(path: str, out: str, *, keep: float, texts: list[str], eval_texts: list[
     The calibration and tuning text is `texts` plus the `blend` (a key of `BLENDS`; None: `DEFAULT_BLEND` for a
     decoder, `ENCODER_BLEND` for an encoder, which cannot write samples); `steps` None: `RUN_STEPS` of the kind.
     Each `eval_texts` file is scored on its own for the original, the compressed and the tuned model (an
-    encoder's compressed model as "compare_compressed"). `decode_weights` is `compare`'s (the product weights both decoders are timed with).
+    encoder's compressed model as "compare_compressed"). `decode_weights` is `compare`'s (the product weights
+    both decoders are timed with).
     The whole directory is written atomically: an error or Ctrl-C leaves nothing behind.
     """
     import sys
