@@ -384,8 +384,8 @@ def compare(a, b, texts, context, stride, max_tokens, runs, threads, decode_weig
 @_out_opt("Directory for compressed/, tuned/ and report/.", required=True)
 @_force_opt()
 @_json_opt("Print the comparison as JSON.")
-def run(path, keep, texts, eval_texts, strategy, sequential, refit, blend, steps, mix, decay, eval_tokens, decode_weights,
-        out, force, as_json):
+def run(path, keep, texts, eval_texts, strategy, sequential, refit, blend, steps, mix, decay, eval_tokens,
+        decode_weights, out, force, as_json):
     """The whole job: compress with calibration, tune the factors, compare before and after."""
     from .report import compare_text, tune_lines
     r = _run(api.run, path, out, keep=keep, texts=list(texts), eval_texts=list(eval_texts) or None, strategy=strategy,

@@ -16,7 +16,8 @@ Feed-forward and value-output matrices: treating gradients and inputs as indepen
 truncation of that weighted matrix is the best one for this objective (Eckart–Young in weighted norms).
 Rotary pairs: dropping pair i of group g zeroes rows of q and k, δy = −y on them, so its second-order
 price is Σ_t (G_tj y_tj)² / (2m) summed over those rows (no independence assumption), times
-`PAIR_PRICE_SCALE` (1: a larger one helped SmolLM2's cut alone and hurt it after the tune, see the constant). A query-key rank of a
+`PAIR_PRICE_SCALE` (1: a larger one helped SmolLM2's cut alone and hurt it after the tune, see the
+constant). A query-key rank of a
 family without rotary embeddings is priced by the same loss as zeroing the whole query output, spread
 over the form's whitened singular values in proportion to σ_k² (an approximation: the scores have no
 gradient of their own here), times `FORM_PRICE_SCALE`: measured on the built-in MiniLM, that second-order

@@ -21,8 +21,9 @@ next tokens of a block, KL all s positions. Without a teacher the loss is CE alo
 Encoders (sentence embeddings). The data are sentences (`texts.split_sentences`: one per line, or cut from
 paragraphs), each tokenised with the tokenizer's special tokens, at most `context` tokens, padded; a batch
 is `batch` sentences, run as `SENTENCE_CHUNKS` sub-batches of similar length, each cut to its longest (the
-same loss as the whole batch padded to its longest, with far less padding). The teacher (always needed) gives each sentence's normalised
-mean-pooled embedding t (the pooling of `embed`), and the student's e is pooled the same way:
+same loss as the whole batch padded to its longest, with far less padding). The teacher (always needed)
+gives each sentence's normalised mean-pooled embedding t (the pooling of `embed`), and the student's e is
+pooled the same way:
 
     cos: mean over sentences of 1 − cos(e, t)        mse: mean squared error of e/‖e‖ against t
     [+ hidden_weight · Σ‖h − h_T‖² / Σ‖h_T‖² over the real tokens' last hidden states]  [+ penalty]
@@ -1006,9 +1007,9 @@ class _Run:
         Sorted by length, each chunk is cut to its own longest sentence, so far less of the work is padding
         (a batch of 32 of the built-in encoder's tuning sentences is 37% real tokens when padded as one, 75% in 4
         chunks). Padded keys are masked, so a sentence's hidden states do not depend on its chunk, and the
-        chunks' terms are summed with the weights that make them the whole batch's: the embedding losses (means
-        over sentences) by each chunk's share of the sentences, the hidden-state term (Σ‖h − h_T‖² / Σ‖h_T‖²) by
-        its share of Σ‖h_T‖². One chunk under torchrun (DistributedDataParallel allows one forward per backward).
+        chunks' terms are summed with the weights that make them the whole batch's: the embedding losses
+        (means over sentences) by each chunk's share of the sentences, the hidden-state term
+        (Σ‖h − h_T‖² / Σ‖h_T‖²) by its share of Σ‖h_T‖². One chunk under torchrun (DistributedDataParallel allows one forward per backward).
         """
         lengths = mask[idx].sum(1)  # (b,) real tokens of each sentence
         order = lengths.argsort(descending=True, stable=True)
@@ -1020,7 +1021,8 @@ class _Run:
             targets = teacher.batch(idx[part], n)
             xs = x[part, :n]  # (b_c, n)
             hidden = net(xs, attention_mask=targets.mask)  # (b_c, n, d) last hidden states
-            got.append((len(part), targets, step_loss(hidden, xs, targets, self.weights, self.settings.temperature)[1]))
+            _, chunk_terms = step_loss(hidden, xs, targets, self.weights, self.settings.temperature)
+            got.append((len(part), targets, chunk_terms))
         energy = [float(t.hidden[t.mask.bool()].pow(2).sum()) if t.hidden is not None else 0.0 for _, t, _ in got]
         share = {"sentences": [b / len(idx) for b, _, _ in got],
                  "energy": [e / max(sum(energy), 1e-30) for e in energy]}
