@@ -402,3 +402,25 @@ def test_repeats_and_the_warning_when_the_run_reads_more_than_the_text(tiny, tmp
     assert any("repeated" in w and "train.txt" in w for w in r["warnings"])
     r = tunelib.tune(cmp, [train], tmp_path / "u", **dict(FAST, steps=2, teacher="none"))
     assert not r["warnings"]
+
+
+@pytest.mark.parametrize("temperature", [1.0, 2.0])
+@pytest.mark.parametrize("weights", [{"ce": 0.3, "kl": 0.7}, {"ce": 1.0}, {"kl": 1.0}])
+@pytest.mark.parametrize("k", [5, 40])  # 40 = V: the tail bin is empty
+def test_token_losses_equal_the_plain_terms_and_their_autograd(temperature, weights, k):
+    gen = torch.Generator().manual_seed(4)
+    z0 = torch.randn(2, 9, 40, generator=gen, dtype=torch.float64) * 3
+    x = torch.randint(0, 40, (2, 9), generator=gen)
+    logp, ids = tunelib.teacher_targets(torch.randn(18, 40, generator=gen) * 3, k, temperature)
+    z1, z2 = z0.clone().requires_grad_(True), z0.clone().requires_grad_(True)
+    fused, terms = tunelib.step_loss(z1, x, (logp, ids), weights, temperature)
+    # Source: torch's own cross-entropy for CE; distill_kl (checked above against torch's kl_div) for KL; and
+    # torch.autograd through both for the gradient.
+    plain = {"ce": F.cross_entropy(z2[:, :-1].reshape(-1, 40), x[:, 1:].reshape(-1)),
+             "kl": tunelib.distill_kl(z2.reshape(-1, 40), logp, ids, temperature)}
+    want = sum(w * plain[n] for n, w in weights.items())
+    fused.backward()
+    want.backward()
+    for n in weights:
+        torch.testing.assert_close(terms[n].double(), plain[n].double(), rtol=1e-5, atol=1e-6)
+    torch.testing.assert_close(z1.grad, z2.grad, rtol=1e-5, atol=1e-7)
