@@ -290,15 +290,15 @@ def run(path: str, out: str, *, keep: float, texts: list[str], eval_texts: list[
         steps: int | None = None, batch: int | None = None, context: int = 128, lr: float | None = None,
         mix: float = RUN_MIX,
         decay: str = DEFAULT_DECAY, decay_coef: float = DEFAULT_DECAY_COEF, seed: int = 0,
-        max_eval_tokens: int | None = 4096, decode_weights: str = "auto", force: bool = False,
-        quiet: bool = False) -> dict:
+        max_eval_tokens: int | None = 4096, compute: str = tunelib.DEFAULT_COMPUTE, decode_weights: str = "auto",
+        force: bool = False, quiet: bool = False) -> dict:
     """Compress, tune and compare in one go; `out` gets `compressed/`, `tuned/` and `report/`.
 
     The calibration and tuning text is `texts` plus the `blend` (a key of `BLENDS`; None: `DEFAULT_BLEND` for a
     decoder, `ENCODER_BLEND` for an encoder, which cannot write samples); `steps` None: `RUN_STEPS` of the kind.
     Each `eval_texts` file is scored on its own for the original, the compressed and the tuned model (an
-    encoder's compressed model as "compare_compressed"). `decode_weights` is `compare`'s (the product weights
-    both decoders are timed with).
+    encoder's compressed model as "compare_compressed"). `compute` is the tune's (`tune.COMPUTES`),
+    `decode_weights` `compare`'s (the product weights both decoders are timed with).
     The whole directory is written atomically: an error or Ctrl-C leaves nothing behind.
     """
     import sys
@@ -314,6 +314,7 @@ def run(path: str, out: str, *, keep: float, texts: list[str], eval_texts: list[
         raise CompressError(f"--blend: unknown value {blend!r}; expected one of {', '.join(BLENDS)}")
     check_output(out, force)
     comparelib.decode_weights_for(decode_weights, 1)  # a bad choice fails before the long work
+    tunelib.resolve_compute(compute)
     read_texts(texts)  # refuse unreadable text before the long work
     if eval_texts:
         read_texts(eval_texts)
@@ -336,7 +337,7 @@ def run(path: str, out: str, *, keep: float, texts: list[str], eval_texts: list[
         say(f"2/3 tune the factors for at most {steps} steps ({decay} decay, next-token weight {mix})")
         t = tunelib.tune(tmp / "compressed", calib, tmp / "tuned", steps=steps, batch=batch, context=context, lr=lr,
                          seed=seed, decay=decay, decay_coef=decay_coef, mix=mix, teacher=str(resolve(path)),
-                         quiet=quiet)
+                         compute=compute, quiet=quiet)
         timer.lap("tune")
         say("3/3 compare the original with the tuned model, and the compressed model before tuning")
         scored = eval_texts or texts

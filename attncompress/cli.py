@@ -57,6 +57,12 @@ def _dtype_opt(default: str):
                              f"runtime widens to float32 at load). [default: {default}]")
 
 
+_compute_opt = click.option(
+    "--compute", type=click.Choice(list(tunelib.COMPUTES)), default=tunelib.DEFAULT_COMPUTE, show_default=True,
+    help="Precision of the tune's products: bfloat16 (autocast; weights, optimiser and losses stay float32), "
+         "float32, or auto: bfloat16 where the CPU multiplies it natively (AVX512-BF16, AMX).")
+
+
 def _texts_opt(help: str, required: bool = False, name: str = "--text", dest: str = "texts"):
     return click.option(name, dest, multiple=True, required=required, type=click.Path(), help=help)
 
@@ -290,13 +296,14 @@ def expand(path, out, force, dtype):
 @click.option("--patience", default=tunelib.DEFAULT_PATIENCE, show_default=True,
               help="Stop when the held-out loss rose at this many evaluations in a row.")
 @_force_opt("Replace --out, and a stale checkpoint, if they exist.")
-@_dtype_opt("the input directory's; training is in float32 either way")
+@_dtype_opt("the input directory's; the trained weights are float32 either way")
+@_compute_opt
 @click.option("--quiet", is_flag=True, help="No progress line.")
 @_json_opt()
 def tune(path, texts, out, steps, batch, context, lr, seed, decay, decay_coef, penalty_every, teacher, temperature,
          mix, topk, eval_texts, eval_tokens, save_every, resume, train_norms, train_dense, embed_loss, hidden_weight,
          heldout, eval_every, patience,
-         force, dtype, quiet, as_json):
+         force, dtype, compute, quiet, as_json):
     """Fine-tune a compressed directory's factors on text (distilling from the source model); also under torchrun."""
     def go():
         try:
@@ -306,7 +313,8 @@ def tune(path, texts, out, steps, batch, context, lr, seed, decay, decay_coef, p
                                 eval_texts=list(eval_texts), eval_tokens=eval_tokens, save_every=save_every,
                                 resume=resume, train_norms=train_norms, train_dense=train_dense,
                                 embed_loss=embed_loss, hidden_weight=hidden_weight, heldout=heldout,
-                                eval_every=eval_every, patience=patience, force=force, dtype=dtype, quiet=quiet)
+                                eval_every=eval_every, patience=patience, force=force, dtype=dtype, compute=compute,
+                                quiet=quiet)
         except tunelib.TuneInterrupted as e:
             click.echo(str(e), err=True)
             sys.exit(130)
@@ -380,17 +388,18 @@ def compare(a, b, texts, context, stride, max_tokens, runs, threads, decode_weig
 @click.option("--decay", type=click.Choice(list(tunelib.DECAYS)), default=tunelib.DEFAULT_DECAY, show_default=True,
               help="Penalty while tuning.")
 @click.option("--eval-tokens", default=4096, show_default=True, help="Tokens scored per comparison (0: all).")
+@_compute_opt
 @_decode_weights_opt
 @_out_opt("Directory for compressed/, tuned/ and report/.", required=True)
 @_force_opt()
 @_json_opt("Print the comparison as JSON.")
 def run(path, keep, texts, eval_texts, strategy, sequential, refit, blend, steps, mix, decay, eval_tokens,
-        decode_weights, out, force, as_json):
+        compute, decode_weights, out, force, as_json):
     """The whole job: compress with calibration, tune the factors, compare before and after."""
     from .report import compare_text, tune_lines
     r = _run(api.run, path, out, keep=keep, texts=list(texts), eval_texts=list(eval_texts) or None, strategy=strategy,
              sequential=sequential, refit=refit, blend=blend, steps=steps, mix=mix, decay=decay,
-             max_eval_tokens=eval_tokens or None, decode_weights=decode_weights, force=force)
+             max_eval_tokens=eval_tokens or None, compute=compute, decode_weights=decode_weights, force=force)
     before = []
     if r["compare_compressed"]:
         q = r["compare_compressed"]["quality"]

@@ -82,6 +82,7 @@ Rank 0 evaluates, checkpoints and writes; the others wait at a barrier.
 """
 from __future__ import annotations
 
+import contextlib
 import copy
 import hashlib
 import json
@@ -95,7 +96,7 @@ from typing import Callable
 import torch
 import torch.nn.functional as F
 
-from . import evaluate
+from . import allocator, evaluate
 from .errors import CompressError
 from .loading import is_compressed, load_model, read_manifest, tokens
 from .model import LayerNorm, Linear, LowRankLinear, Transformer
@@ -145,6 +146,7 @@ class TuneSettings:
     patience: int
     embed_loss: str | None = None  # encoders: "cos" or "mse" on the normalised pooled embedding
     hidden_weight: float = 0.0  # encoders: weight of the relative squared error of the last hidden states
+    compute: str = "float32"  # the forward passes' products: "float32", or "bfloat16" under autocast
 
     def to_json(self) -> dict:
         return asdict(self)
@@ -911,8 +913,10 @@ class TeacherCache:
     They are kept after the first use when the blocks a run touches fit in `CACHE_BYTES`, else recomputed.
     """
 
-    def __init__(self, model: Transformer, blocks: torch.Tensor, topk: int, temperature: float, touched: int):
+    def __init__(self, model: Transformer, blocks: torch.Tensor, topk: int, temperature: float, touched: int,
+                 compute: str = "float32"):
         self.model, self.blocks, self.topk, self.temperature = model, blocks, topk, temperature
+        self.compute = compute
         nbytes = touched * blocks.shape[1] * min(topk, model.shape.vocab_size) * 12  # float32 + int64
         self._kept: dict[int, tuple[torch.Tensor, torch.Tensor]] | None = {} if nbytes <= CACHE_BYTES else None
 
@@ -925,8 +929,9 @@ class TeacherCache:
         """(logp, ids) of block j, each (s, k)."""
         if self._kept is not None and j in self._kept:
             return self._kept[j]
-        with torch.no_grad():
-            tgt = teacher_targets(self.model(self.blocks[j:j + 1])[0], self.topk, self.temperature)  # (s, k) each
+        with torch.no_grad(), products_in(self.compute):
+            logits = self.model(self.blocks[j:j + 1])[0]  # (s, V)
+        tgt = teacher_targets(logits, self.topk, self.temperature)  # (s, k) each, float32
         if self._kept is not None:
             self._kept[j] = tgt
         return tgt
@@ -943,8 +948,9 @@ class SentenceTeacher:
     """An encoder teacher's targets per sentence, each computed once, alone and unpadded (so bits never depend
     on the batch), and kept: (d,) normalised pooled embeddings, and (s, d) hidden states when they are trained on."""
 
-    def __init__(self, model: Transformer, ids: torch.Tensor, mask: torch.Tensor, hidden: bool):
-        self.model, self.ids, self.mask, self.hidden = model, ids, mask, hidden
+    def __init__(self, model: Transformer, ids: torch.Tensor, mask: torch.Tensor, hidden: bool,
+                 compute: str = "float32"):
+        self.model, self.ids, self.mask, self.hidden, self.compute = model, ids, mask, hidden, compute
         self._kept: dict[int, tuple[torch.Tensor, torch.Tensor | None]] = {}
         self.description = "kept" + (" with hidden states" if hidden else "")
 
@@ -952,8 +958,9 @@ class SentenceTeacher:
         """(unit (d,), hidden (n_j, d) or None) of sentence j."""
         if j not in self._kept:
             n = int(self.mask[j].sum())
-            with torch.no_grad():
-                h = self.model(self.ids[j:j + 1, :n])[0].float()  # (n, d): one sentence, no padding
+            with torch.no_grad(), products_in(self.compute):
+                h = self.model(self.ids[j:j + 1, :n])[0]
+            h = h.float()  # (n, d): one sentence, no padding
             self._kept[j] = (F.normalize(h.mean(0), dim=-1), h if self.hidden else None)
         return self._kept[j]
 
@@ -981,6 +988,48 @@ def _optimizer(model: Transformer, s: TuneSettings) -> tuple[torch.optim.AdamW, 
     if norms:
         groups.append({"params": [p for _, p, _ in norms], "weight_decay": 0.0})
     return torch.optim.AdamW(groups, lr=s.lr), trained  # the learning rate is set before every step
+
+
+# ------------------------------------------------------------------------------------ product precision
+# `compute`: the precision of the matrix products in the forward passes of the student and the teacher.
+# "bfloat16" runs them under torch's autocast (the weights, the optimiser and every loss stay float32; the
+# logits and hidden states are widened before any loss), where the CPU multiplies bfloat16 natively
+# (AVX512-BF16 or AMX): measured on this project's 2-core machine, a 512×576×1536 product takes 1.2 ms
+# against 5.3 in float32, and a tuning step of SmolLM2 at 4 × 128 tokens about half the time. Elsewhere
+# bfloat16 is emulated and slower, so "auto" chooses float32.
+COMPUTES = ("auto", "float32", "bfloat16")
+DEFAULT_COMPUTE = "auto"
+_BF16_FLAGS = ("avx512_bf16", "amx_bf16")
+
+
+def native_bfloat16(cpuinfo: str | None = None) -> bool:
+    """True when the CPU flags (Linux /proc/cpuinfo, or the given text) include a native bfloat16 product."""
+    if cpuinfo is None:
+        try:
+            cpuinfo = Path("/proc/cpuinfo").read_text(encoding="utf-8", errors="replace")
+        except OSError:
+            return False
+    flags = set()
+    for line in cpuinfo.splitlines():
+        if line.startswith("flags"):
+            flags.update(line.split(":", 1)[-1].split())
+    return any(f in flags for f in _BF16_FLAGS)
+
+
+def resolve_compute(choice: str) -> str:
+    """"auto" → "bfloat16" with native bfloat16 products, else "float32"; the others as given."""
+    if choice not in COMPUTES:
+        raise CompressError(f"--compute: unknown value {choice!r}; expected one of {', '.join(COMPUTES)}")
+    if choice == "auto":
+        return "bfloat16" if native_bfloat16() else "float32"
+    return choice
+
+
+def products_in(compute: str):
+    """The context a forward pass runs in for `compute`: bfloat16 autocast, or none."""
+    if compute == "bfloat16":
+        return torch.autocast("cpu", dtype=torch.bfloat16)
+    return contextlib.nullcontext()
 
 
 # --------------------------------------------------------------------------------------------- the loop
@@ -1082,7 +1131,8 @@ class _Run:
     def _loss(self, net, x: torch.Tensor, idx: torch.Tensor, teacher, mask: torch.Tensor | None):
         """(loss, terms) of rows x (b, s) = items idx of a set whose teacher targets and mask (None: blocks) are given."""
         if mask is None:
-            logits = net(x)  # (b, s, V)
+            with products_in(self.settings.compute):
+                logits = net(x)  # (b, s, V), widened by the loss
             targets = teacher.batch(idx) if teacher is not None else None
         else:
             return self._sentence_loss(net, x, idx, teacher, mask)
@@ -1107,7 +1157,9 @@ class _Run:
             n = int(lengths[part].max())
             targets = teacher.batch(idx[part], n)
             xs = x[part, :n]  # (b_c, n)
-            hidden = net(xs, attention_mask=targets.mask)  # (b_c, n, d) last hidden states
+            with products_in(self.settings.compute):
+                hidden = net(xs, attention_mask=targets.mask)
+            hidden = hidden.float()  # (b_c, n, d) last hidden states
             _, chunk_terms = step_loss(hidden, xs, targets, self.weights, self.settings.temperature)
             got.append((len(part), targets, chunk_terms))
         energy = [float(t.hidden[t.mask.bool()].pow(2).sum()) if t.hidden is not None else 0.0 for _, t, _ in got]
@@ -1213,7 +1265,7 @@ def tune(src_dir: str | Path, texts: list[str | Path], out: str | Path, *, steps
          save_every: int = 100, resume: bool = False, train_norms: bool = False, train_dense: bool = False,
          embed_loss: str = DEFAULT_EMBED_LOSS, hidden_weight: float | None = None, heldout: float = DEFAULT_HELDOUT,
          eval_every: int = DEFAULT_EVAL_EVERY, patience: int = DEFAULT_PATIENCE, force: bool = False,
-         quiet: bool = False, dtype: str | None = None) -> dict:
+         quiet: bool = False, dtype: str | None = None, compute: str = DEFAULT_COMPUTE) -> dict:
     """Fine-tune the factors of a compressed directory on text and write the tuned directory.
 
     Args:
@@ -1237,7 +1289,10 @@ def tune(src_dir: str | Path, texts: list[str | Path], out: str | Path, *, steps
         heldout, eval_every, patience: fraction of the blocks held out, steps between held-out evaluations,
             evaluations without a new best before stopping (see "Best step" in the module docstring).
         force, quiet: replace `out` and a stale checkpoint; no progress line.
-        dtype: format of the weights written (`io.storage`; default: the input directory's). Training is float32.
+        dtype: format of the weights written (`io.storage`; default: the input directory's). The trained
+            weights and the optimiser are float32 whatever `compute` is.
+        compute: precision of the forward passes' products: "float32", "bfloat16" (autocast) or "auto"
+            (bfloat16 where the CPU multiplies it natively; see `COMPUTES`). The manifest records the choice.
 
     Returns:
         A report dict: out, steps, steps_run, tokens, seconds, tokens_per_second, curve, heldout, data (with
@@ -1251,6 +1306,8 @@ def tune(src_dir: str | Path, texts: list[str | Path], out: str | Path, *, steps
     timer = Timer()
     if dtype is not None:
         storage.check_dtype(dtype)
+    compute = resolve_compute(compute)
+    allocator.keep_freed_memory()  # the same tensors every step: reuse their memory (see `allocator`)
     world_size = max(1, int(os.environ.get("WORLD_SIZE", "1")))
     hidden_weight = DEFAULT_HIDDEN_WEIGHT if hidden_weight is None else hidden_weight
     _check_options(steps, batch or world_size, context, lr or DEFAULT_LR, decay, decay_coef, penalty_every,
@@ -1271,7 +1328,7 @@ def tune(src_dir: str | Path, texts: list[str | Path], out: str | Path, *, steps
                             warmup=max(1, round(WARMUP_FRACTION * steps)),
                             embed_loss=embed_loss if encoder else None,
                             hidden_weight=float(hidden_weight) if encoder else 0.0,
-                            heldout=float(heldout), eval_every=eval_every, patience=patience)
+                            heldout=float(heldout), eval_every=eval_every, patience=patience, compute=compute)
     model_sha = _sha256_file(job.src / "model.safetensors")
     fingerprint = {"settings": json.dumps(settings.to_json(), sort_keys=True), "data": job.data["tokens_sha256"],
                    "model": model_sha, "teacher": json.dumps(t_ident, sort_keys=True)}
@@ -1280,12 +1337,12 @@ def tune(src_dir: str | Path, texts: list[str | Path], out: str | Path, *, steps
     try:
         cache = held_cache = None
         if encoder:
-            cache = SentenceTeacher(teacher_model, job.blocks, job.mask, settings.hidden_weight > 0)
-            held_cache = SentenceTeacher(teacher_model, job.held, job.held_mask, settings.hidden_weight > 0)
+            cache = SentenceTeacher(teacher_model, job.blocks, job.mask, settings.hidden_weight > 0, compute)
+            held_cache = SentenceTeacher(teacher_model, job.held, job.held_mask, settings.hidden_weight > 0, compute)
         elif teacher_model is not None:
             touched = min(job.blocks.shape[0], steps * (batch // world))
-            cache = TeacherCache(teacher_model, job.blocks, topk, settings.temperature, touched)
-            held_cache = TeacherCache(teacher_model, job.held, topk, settings.temperature, len(job.held))
+            cache = TeacherCache(teacher_model, job.blocks, topk, settings.temperature, touched, compute)
+            held_cache = TeacherCache(teacher_model, job.held, topk, settings.temperature, len(job.held), compute)
         run = _Run(job, settings, opt, trained, cache, held_cache, fingerprint, rank, world, save_every, quiet)
         start, eval_before = run.resume() if resume else (0, None)
         timer.lap("load")

@@ -264,12 +264,12 @@ def test_two_process_torchrun_matches_one_process(tiny, tmp_path):
            "--master-port", str(_free_port()), str(script), "tune", str(cmp), "--text", str(train), "--out", str(out),
            "--steps", "6", "--batch", "4", "--context", "16", "--lr", "3e-3", "--mix", "0.5", "--decay", "frobenius",
            "--decay-coef", "1e-3",
-           "--penalty-every", "2", "--save-every", "0", "--quiet"]
+           "--penalty-every", "2", "--save-every", "0", "--compute", "float32", "--quiet"]
     env = dict(os.environ, OMP_NUM_THREADS="1")
     p = subprocess.run(cmd, capture_output=True, text=True, env=env, timeout=600)
     assert p.returncode == 0, p.stderr[-2000:]
     one = tunelib.tune(cmp, [train], tmp_path / "one", mix=0.5, decay="frobenius", decay_coef=1e-3, penalty_every=2,
-                       **FAST)
+                       compute="float32", **FAST)
     two = json.loads((out / "attncompress.json").read_text())["tune"]
     assert two["processes"] == 2
     # same global batch: the same losses up to float rounding (all-reduce order, per-rank batch shapes);
@@ -424,3 +424,29 @@ def test_token_losses_equal_the_plain_terms_and_their_autograd(temperature, weig
     for n in weights:
         torch.testing.assert_close(terms[n].double(), plain[n].double(), rtol=1e-5, atol=1e-6)
     torch.testing.assert_close(z1.grad, z2.grad, rtol=1e-5, atol=1e-7)
+
+
+def test_native_bfloat16_reads_the_cpu_flags():
+    # Source: the Linux kernel's /proc/cpuinfo flag names (arch/x86/include/asm/cpufeatures.h): avx512_bf16,
+    # amx_bf16 (from memory).
+    assert tunelib.native_bfloat16("processor\t: 0\nflags\t\t: fpu sse2 avx2 avx512f avx512_bf16\n")
+    assert tunelib.native_bfloat16("flags\t\t: fpu amx_tile amx_bf16\n")
+    assert not tunelib.native_bfloat16("flags\t\t: fpu sse2 avx2 avx512f avx512_vnni\n")
+    assert tunelib.resolve_compute("float32") == "float32"
+    with pytest.raises(CompressError, match="--compute"):
+        tunelib.resolve_compute("int8")
+
+
+def test_a_bfloat16_tune_follows_the_float32_one_and_is_recorded(tiny, tmp_path):
+    _, cmp, train, _ = tiny
+    a = tunelib.tune(cmp, [train], tmp_path / "f32", mix=0.5, compute="float32", **FAST)
+    b = tunelib.tune(cmp, [train], tmp_path / "bf16", mix=0.5, compute="bfloat16", **FAST)
+    # bfloat16 keeps 8 bits of mantissa (a relative rounding of 2^-9 per product): the losses of the same steps
+    # agree to a few per cent, not bit for bit (the tolerance is a choice; seen when written: below 1%)
+    for x, y in zip(a["curve"], b["curve"]):
+        assert y["loss"] == pytest.approx(x["loss"], rel=0.03)
+    assert any(x["loss"] != y["loss"] for x, y in zip(a["curve"], b["curve"]))  # it did compute in bfloat16
+    manifest = json.loads((tmp_path / "bf16" / "attncompress.json").read_text())
+    assert manifest["tune"]["settings"]["compute"] == "bfloat16"
+    w = _weights(tmp_path / "bf16")
+    assert all(t.dtype != torch.bfloat16 for t in w.values())  # the weights are not written in bfloat16

@@ -187,7 +187,7 @@ def test_a_batch_run_in_chunks_of_similar_length_has_the_whole_batch_loss_and_gr
     weights = tunelib.sentence_loss_weights(embed_loss, 0.7)
     idx = torch.arange(3, 3 + 13)  # 13 sentences: chunks of 4, 4, 4, 1 with lengths that differ
     assert len(set(mask[idx].sum(1).tolist())) > 3
-    run = SimpleNamespace(world=1, weights=weights, settings=SimpleNamespace(temperature=1.0))
+    run = SimpleNamespace(world=1, weights=weights, settings=SimpleNamespace(temperature=1.0, compute="float32"))
     params = [p for p in student.parameters() if p.is_floating_point()]
     for p in params:
         p.requires_grad_(True)
