@@ -18,10 +18,12 @@ import argparse
 import json
 import os
 import statistics
-import subprocess
 import sys
 import time
 from pathlib import Path
+
+sys.path.insert(0, str(Path(__file__).resolve().parent))
+from results import RESULTS, write_results  # noqa: E402
 
 from attncompress import threads  # noqa: E402  (before torch: it sets the OpenMP waiting policy)
 
@@ -89,16 +91,13 @@ def main():
         print(f"{c:9s} step {med[c]['step']:.2f} s, teacher targets of {args.batch} blocks {med[c]['teacher']:.2f} s")
     ratio = {k: med["float32"][k] / med["bfloat16"][k] for k in ("step", "teacher")}
     print(f"float32 / bfloat16: step {ratio['step']:.2f}x, teacher {ratio['teacher']:.2f}x")
-    commit = subprocess.run(["git", "rev-parse", "HEAD"], capture_output=True, text=True,
-                            cwd=Path(__file__).parent).stdout.strip()
-    out = Path(__file__).parent / "results" / "tune_step.json"
-    results = json.loads(out.read_text()) if out.is_file() else {}
-    results[args.allocator] = {
-        "command": "python benchmarks/tune_step.py " + " ".join(sys.argv[1:]), "commit": commit,
-        "torch": torch.__version__, "thread_choice": CHOICE.to_json(), "load_before": load_before,
-        "load_after": os.getloadavg(), "native_bfloat16": tunelib.native_bfloat16(), "batch": args.batch,
-        "runs": args.runs, "median_s": med, "all_s": times, "float32_over_bfloat16": ratio}
-    out.write_text(json.dumps(results, indent=1) + "\n")
+    path = RESULTS / "tune_step.json"
+    figures = json.loads(path.read_text())["figures"] if path.is_file() else {}
+    figures[args.allocator] = {"command": " ".join(sys.argv), "thread_choice": CHOICE.to_json(),
+                               "load_before": load_before, "load_after": os.getloadavg(),
+                               "native_bfloat16": tunelib.native_bfloat16(), "batch": args.batch, "runs": args.runs,
+                               "median_s": med, "all_s": times, "float32_over_bfloat16": ratio}
+    out = write_results("tune_step", figures)
     print(f"wrote {out}")
 
 
