@@ -123,6 +123,17 @@ CORPORA: dict[str, Callable[..., str]] = {
 }
 
 
+# The document each corpus comes from: two corpora of one source are different passages of the same kind of text.
+SOURCES = {"pydoc-calibration": "the Python language reference", "pydoc-heldout": "the Python language reference",
+           "licenses": "the license texts"}
+
+
+def same_source(a: str, b: str) -> str | None:
+    """The shared source of two text names (`corpus:NAME` or files) when both are corpora of it, else None."""
+    sa, sb = (SOURCES.get(t[len("corpus:"):]) if t.startswith("corpus:") else None for t in (a, b))
+    return sa if sa is not None and sa == sb else None
+
+
 def corpus_text(name: str, max_chars: int | None = None) -> str:
     """The text of a named corpus.
 

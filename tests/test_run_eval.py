@@ -4,7 +4,7 @@ import math
 import pytest
 import torch
 
-from attncompress import api
+from attncompress import api, corpora
 from attncompress.compare import compare
 from conftest import WORDS
 
@@ -90,3 +90,11 @@ def test_run_tunes_for_the_steps_of_the_model_kind_by_default(tiny_dirs, tmp_pat
     with pytest.raises(RuntimeError, match="stopped by the test"):
         api.run(str(d), str(tmp_path / "job"), keep=0.6, texts=[str(train)], blend="text", quiet=True)
     assert seen["steps"] == api.RUN_STEPS[kind] and not (tmp_path / "job").exists()
+
+
+def test_corpora_of_one_source_are_named_so():
+    # Source: attncompress.corpora's own definition of the parts (two halves of pydoc_data.topics.topics).
+    assert corpora.same_source("corpus:pydoc-heldout", "corpus:pydoc-calibration") == "the Python language reference"
+    assert corpora.same_source("corpus:licenses", "corpus:pydoc-calibration") is None
+    assert corpora.same_source("corpus:pydoc-heldout", "notes/pydoc-calibration.txt") is None
+    assert corpora.same_source("corpus:samples", "corpus:samples") is None  # not a bundled corpus
