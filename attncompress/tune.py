@@ -753,7 +753,10 @@ DEFAULT_SENTENCE_BATCH = 32  # sentences per step of an encoder tune (a decoder'
 # 60 steps, perplexity ratio on 2048 held-out pydoc / license tokens; 3.30× / 5.67× before the tune):
 # 1e-4 → 2.72× / 3.88×, 3e-4 → 2.85× / 4.00× (both held-out losses 2.738 → 2.552, still falling at step 60).
 # (benchmarks/scans/demo_tune_scan.py, figures in benchmarks/results/scans.md)
-DEFAULT_LR = 1e-4
+# With the demo's blend of canal text + samples + pydoc (4096 tokens of each text; 1.76× / 3.58× before the
+# tune), 60 steps: 1e-4 → 1.294× / 2.644×, 2e-4 → 1.243× / 2.555× (held-out loss 2.358 → 2.122 and → 2.110)
+# (`benchmarks/run_demo.py --name demo-blend-lr2e-4 --lr 2e-4`, benchmarks/results/demo-blend-lr2e-4.json).
+DEFAULT_LR = 2e-4
 # An encoder's, and the weight of its hidden-state term: measured on the built-in MiniLM at keep 0.7, 150
 # steps, mean cosine on held-out pydoc paragraphs 0.907 before: lr 1e-3 alone 0.930, lr 1e-3 + hidden 1
 # 0.944, lr 3e-4 + hidden 1 0.950 (lr 1e-3 first raised the held-out loss for 20 steps; 3e-4 did not).

@@ -20,7 +20,7 @@ import sys
 import tempfile
 from pathlib import Path
 
-from attncompress import api
+from attncompress import api, tune as tunelib
 
 ROOT = Path(__file__).resolve().parent.parent
 
@@ -33,7 +33,7 @@ def main() -> None:
     ap.add_argument("--eval-text", action="append", help="[default: corpus:pydoc-heldout, corpus:licenses]")
     ap.add_argument("--blend", default=api.DEFAULT_BLEND, choices=list(api.BLENDS))
     ap.add_argument("--steps", type=int, default=60)
-    ap.add_argument("--lr", type=float, default=1e-4)
+    ap.add_argument("--lr", type=float, default=tunelib.DEFAULT_LR)
     ap.add_argument("--mix", type=float, default=api.RUN_MIX)
     ap.add_argument("--eval-tokens", type=int, default=4096)
     a = ap.parse_args()
