@@ -1,12 +1,15 @@
 """torch.compile of the decode step against eager, on the fused runtime (an experiment; eager stays the default).
 
     python benchmarks/compile_decode.py [--model builtin:smollm2-135m] [--steps 32] [--weights float16] [--threads SPEC]
+        [--cpp-wrapper]
 
 Compiles `Transformer.forward` for single-token steps (dynamic cache length) with the inductor backend (it
 needs a C++ compiler), then times eager and compiled steps alternately after a 128-token prompt and prints
 ms per token, the compile time, and the largest logit difference. A failure to compile is printed, not raised.
 --weights float16 first stores the product weights in float16 (`attncompress.model.halve`, the default of
-`generate` and `compare`). Writes benchmarks/results/compile_decode.json (command, commit, load, figures).
+`generate` and `compare`); --cpp-wrapper sets inductor's `cpp_wrapper` (the compiled step calls its kernels
+from generated C++ instead of Python). Writes benchmarks/results/compile_decode.json (command, commit, load,
+figures), one entry per weights and wrapper.
 """
 import os
 import sys
@@ -36,7 +39,12 @@ def main():
     ap.add_argument("--steps", type=int, default=32)
     ap.add_argument("--threads")
     ap.add_argument("--weights", choices=["float32", "float16"], default="float32")
+    ap.add_argument("--cpp-wrapper", action="store_true",
+                    help="inductor's C++ wrapper: the compiled step calls its kernels from C++, not Python")
     args = ap.parse_args()
+    if args.cpp_wrapper:
+        import torch._inductor.config as inductor_config
+        inductor_config.cpp_wrapper = True
     load_before = os.getloadavg()
     m = fuse(load_model(resolve(args.model)).model)
     if args.weights == "float16":
@@ -74,10 +82,11 @@ def main():
                             cwd=Path(__file__).parent).stdout.strip()
     out = Path(__file__).parent / "results" / "compile_decode.json"
     runs = json.loads(out.read_text()) if out.exists() else {}
-    runs[args.weights] = {
+    runs[args.weights + (" cpp-wrapper" if args.cpp_wrapper else "")] = {
         "command": "python benchmarks/compile_decode.py " + " ".join(sys.argv[1:]), "commit": commit,
         "torch": torch.__version__, "thread_choice": CHOICE.to_json(), "load_before": load_before,
         "load_after": os.getloadavg(), "model": args.model, "weights": args.weights, "compile_seconds": compile_s,
+        "cpp_wrapper": args.cpp_wrapper,
         "largest_logit_difference": diff, "eager_ms": statistics.median(times["eager"]) * 1e3,
         "compiled_ms": statistics.median(times["compiled"]) * 1e3, "steps": len(times["eager"])}
     out.write_text(json.dumps(runs, indent=2) + "\n", encoding="utf-8")
