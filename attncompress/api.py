@@ -87,17 +87,21 @@ def embed(path: str, text: str, batch: int = 32) -> dict:
 
 
 def generate(path: str, prompts: list[str], *, max_tokens: int = 64, temperature: float = 0.0, top_p: float = 1.0,
-             seed: int = 0, batch: int = 8, decode_weights: str = "auto", quiet: bool = False) -> dict:
+             seed: int = 0, batch: int = 8, decode_weights: str = "auto", decode_step: str = "auto",
+             quiet: bool = False) -> dict:
     """Continue each prompt with a decoder (greedy at temperature 0); see `generate.generate_ids`. The model
-    runs fused, its product weights in `compare.decode_weights_for(decode_weights, rows per step)`."""
+    runs fused, its product weights in `compare.decode_weights_for(decode_weights, rows per step)`, its
+    one-sequence steps by `compare.attach_step(model, decode_step)`."""
     import time
     weights = comparelib.decode_weights_for(decode_weights, min(batch, len(prompts)))
+    comparelib.check_decode_step(decode_step)
     loaded = load_model(resolve(path))
     if not loaded.model.is_decoder:
         raise CompressError(f"{loaded.path}: generate needs a decoder; this {loaded.shape.family} model is an encoder")
     fuse(loaded.model)
     if weights == "float16":
         halve(loaded.model)
+    step = comparelib.attach_step(loaded.model, decode_step)
     ids = [tokens(loaded, p) for p in prompts]
     t0 = time.perf_counter()
     new = gen.generate_ids(loaded.model, ids, max_tokens=max_tokens, temperature=temperature, top_p=top_p, seed=seed,
@@ -107,7 +111,7 @@ def generate(path: str, prompts: list[str], *, max_tokens: int = 64, temperature
     return {"path": str(loaded.path), "prompts": prompts, "completions": [loaded.tokenizer.decode(x) for x in new],
             "prompt_ids": ids, "ids": new, "tokens": n, "seconds": dt, "tokens_per_second": n / dt if dt > 0 else None,
             "settings": {"max_tokens": max_tokens, "temperature": temperature, "top_p": top_p, "seed": seed,
-                         "batch": batch, "decode_weights": weights}}
+                         "batch": batch, "decode_weights": weights, "decode_step": step}}
 
 
 # ------------------------------------------------------------------------------------ spectra and plans
@@ -295,6 +299,7 @@ def run(path: str, out: str, *, keep: float, texts: list[str], eval_texts: list[
         mix: float = RUN_MIX,
         decay: str = DEFAULT_DECAY, decay_coef: float = DEFAULT_DECAY_COEF, seed: int = 0,
         max_eval_tokens: int | None = 4096, compute: str = tunelib.DEFAULT_COMPUTE, decode_weights: str = "auto",
+        decode_step: str = "auto",
         force: bool = False, quiet: bool = False) -> dict:
     """Compress, tune and compare in one go; `out` gets `compressed/`, `tuned/` and `report/`.
 
@@ -302,7 +307,7 @@ def run(path: str, out: str, *, keep: float, texts: list[str], eval_texts: list[
     decoder, `ENCODER_BLEND` for an encoder, which cannot write samples); `steps` None: `RUN_STEPS` of the kind.
     Each `eval_texts` file is scored on its own for the original, the compressed and the tuned model (an
     encoder's compressed model as "compare_compressed"). `compute` is the tune's (`tune.COMPUTES`),
-    `decode_weights` `compare`'s (the product weights both decoders are timed with).
+    `decode_weights` and `decode_step` `compare`'s (how both decoders are timed).
     The whole directory is written atomically: an error or Ctrl-C leaves nothing behind.
     """
     import sys
@@ -318,6 +323,7 @@ def run(path: str, out: str, *, keep: float, texts: list[str], eval_texts: list[
         raise CompressError(f"--blend: unknown value {blend!r}; expected one of {', '.join(BLENDS)}")
     check_output(out, force)
     comparelib.decode_weights_for(decode_weights, 1)  # a bad choice fails before the long work
+    comparelib.check_decode_step(decode_step)
     tunelib.resolve_compute(compute)
     read_texts(texts)  # refuse unreadable text before the long work
     if eval_texts:
@@ -351,7 +357,7 @@ def run(path: str, out: str, *, keep: float, texts: list[str], eval_texts: list[
         say("3/3 compare the original with the tuned model, and the compressed model before tuning")
         scored = eval_texts or texts
         r = comparelib.compare(path, str(tmp / "tuned"), scored, max_tokens=max_eval_tokens,
-                               decode_weights=decode_weights, quiet=quiet)
+                               decode_weights=decode_weights, decode_step=decode_step, quiet=quiet)
         rc = None
         if r["quality"] and r["quality"]["kind"] == "embedding":
             rc = comparelib.compare(path, str(tmp / "compressed"), scored, speed_runs=0, quiet=quiet)

@@ -16,7 +16,7 @@ import click  # noqa: E402
 from . import api, compress as pipeline, tune as tunelib
 from .errors import CompressError
 from .factorize import DEFAULT_DAMPING
-from .compare import DECODE_WEIGHTS
+from .compare import DECODE_STEPS, DECODE_WEIGHTS
 from .io.storage import DTYPES
 from .model import STEP_ROWS
 from .io.write import DEFAULT_SHARD_SIZE
@@ -111,6 +111,13 @@ def _decode_weights_opt(f):
                         f"{STEP_ROWS} rows. Perplexities are always float32.")(f)
 
 
+def _decode_step_opt(f):
+    return click.option("--decode-step", type=click.Choice(DECODE_STEPS), default="auto", show_default=True,
+                        help="How one sequence's decode steps run: auto takes the compiled kernel (the whole step in "
+                        "one call, built with the C compiler on first use) where it applies, float16 decoders with "
+                        "RMS norms and a gated SiLU feed-forward; torch runs every operation through torch.")(f)
+
+
 @main.command()
 @click.argument("path")
 @click.option("--prompt", "prompts", multiple=True, help="Text to continue (repeatable).")
@@ -121,18 +128,21 @@ def _decode_weights_opt(f):
 @click.option("--seed", default=0, show_default=True, help="Seed of the sampling (with --batch, fixes the tokens).")
 @click.option("--batch", default=8, show_default=True, help="Prompts of one length decoded together.")
 @_decode_weights_opt
+@_decode_step_opt
 @_out_opt("Write prompts, completions and token ids as JSON to this file.")
 @_json_opt()
-def generate(path, prompts, prompt_file, max_tokens, temperature, top_p, seed, batch, decode_weights, out, as_json):
+def generate(path, prompts, prompt_file, max_tokens, temperature, top_p, seed, batch, decode_weights, decode_step, out,
+             as_json):
     """Continue prompts with a decoder, source or compressed (KV cache, batched); tokens/s on stderr."""
     from .texts import read_lines
     prompts = list(prompts) + (_run(read_lines, prompt_file) if prompt_file else [])
     if not prompts:
         raise click.UsageError("give --prompt TEXT or --prompt-file FILE")
     r = _run(api.generate, path, prompts, max_tokens=max_tokens, temperature=temperature, top_p=top_p, seed=seed,
-             batch=batch, decode_weights=decode_weights)
+             batch=batch, decode_weights=decode_weights, decode_step=decode_step)
     click.echo(f"{r['tokens']} tokens in {r['seconds']:.1f}s ({r['tokens_per_second'] or 0:.1f} tokens/s, "
-               f"{r['settings']['decode_weights']} weights, {threadlib.current().describe()})", err=True)
+               f"{r['settings']['decode_weights']} weights, steps: {r['settings']['decode_step']}, "
+               f"{threadlib.current().describe()})", err=True)
     if out:
         from .io.write import write_json_atomic
         _run(write_json_atomic, out, r)
@@ -353,17 +363,20 @@ def tune(path, texts, out, steps, batch, context, lr, seed, decay, decay_coef, p
               "cores busy at start-up; also ATTNCOMPRESS_THREADS]; on a machine shared with other heavy "
               "jobs use 1 or N:passive.")
 @_decode_weights_opt
+@_decode_step_opt
 @_json_opt("Print the report as JSON (schema attncompress.compare/1).")
 @_out_opt("Write compare.json, report.md and PNG plots to this directory.")
 @_force_opt()
 @click.option("--quiet", is_flag=True, help="No progress lines.")
-def compare(a, b, texts, context, stride, max_tokens, runs, threads, decode_weights, as_json, out, force, quiet):
+def compare(a, b, texts, context, stride, max_tokens, runs, threads, decode_weights, decode_step, as_json, out, force,
+            quiet):
     """Model A against model B: size, KV cache, perplexity or embedding agreement, and speed side by side."""
     from .report import compare_text, write_compare
     if threads is not None:
         _run(threadlib.parse_spec, threads)
     r = _run(api.compare, a, b, list(texts) or None, out=out, force=force, context=context, stride=stride,
-             max_tokens=max_tokens, speed_runs=runs, decode_weights=decode_weights, quiet=quiet)
+             max_tokens=max_tokens, speed_runs=runs, decode_weights=decode_weights, decode_step=decode_step,
+             quiet=quiet)
     note = _run(write_compare, r, out, force) if out else None
     _emit(r, as_json, compare_text(r) + (f"\nwrote {out}/report.md and {out}/compare.json; {note}" if out else ""))
 
@@ -390,16 +403,18 @@ def compare(a, b, texts, context, stride, max_tokens, runs, threads, decode_weig
 @click.option("--eval-tokens", default=4096, show_default=True, help="Tokens scored per comparison (0: all).")
 @_compute_opt
 @_decode_weights_opt
+@_decode_step_opt
 @_out_opt("Directory for compressed/, tuned/ and report/.", required=True)
 @_force_opt()
 @_json_opt("Print the comparison as JSON.")
 def run(path, keep, texts, eval_texts, strategy, sequential, refit, blend, steps, mix, decay, eval_tokens,
-        compute, decode_weights, out, force, as_json):
+        compute, decode_weights, decode_step, out, force, as_json):
     """The whole job: compress with calibration, tune the factors, compare before and after."""
     from .report import compare_text, tune_lines
     r = _run(api.run, path, out, keep=keep, texts=list(texts), eval_texts=list(eval_texts) or None, strategy=strategy,
              sequential=sequential, refit=refit, blend=blend, steps=steps, mix=mix, decay=decay,
-             max_eval_tokens=eval_tokens or None, compute=compute, decode_weights=decode_weights, force=force)
+             max_eval_tokens=eval_tokens or None, compute=compute, decode_weights=decode_weights,
+             decode_step=decode_step, force=force)
     before = []
     if r["compare_compressed"]:
         q = r["compare_compressed"]["quality"]

@@ -330,6 +330,24 @@ def _side(times: list[list[float]]) -> dict:
 
 
 DECODE_WEIGHTS = ("auto", "float32", "float16")
+# How a decoder's one-sequence decode step runs: "auto" the compiled kernel where it applies (`native`), else torch
+DECODE_STEPS = ("auto", "torch")
+
+
+def check_decode_step(choice: str) -> str:
+    """Raises CompressError unless choice is one of DECODE_STEPS; returns it."""
+    if choice not in DECODE_STEPS:
+        raise CompressError(f"--decode-step: expected one of {', '.join(DECODE_STEPS)}; got {choice!r}")
+    return choice
+
+
+def attach_step(model: Transformer, choice: str) -> str:
+    """What the model's decode steps run (`native.attach` under "auto"), as a report line."""
+    if check_decode_step(choice) == "torch":
+        model.native = None
+        return "torch (asked for)"
+    from . import native
+    return native.attach(model)
 
 
 def decode_weights_for(choice: str, rows: int) -> str:
@@ -348,9 +366,11 @@ def decode_weights_for(choice: str, rows: int) -> str:
 
 
 def speed(a: _Model, b: _Model, runs: int = RUNS, threads: int | None = None,
-          sentences: list[str] | None = None, bandwidth: bool = True, decode_weights: str = "auto") -> dict:
+          sentences: list[str] | None = None, bandwidth: bool = True, decode_weights: str = "auto",
+          decode_step: str = "auto") -> dict:
     """The speed section of the comparison (see `compare` for the keys). Decoders are timed with their product
-    weights in `decode_weights_for(decode_weights, 1)` (float16: both models are `halve`d in place)."""
+    weights in `decode_weights_for(decode_weights, 1)` (float16: both models are `halve`d in place), their
+    steps by `attach_step(model, decode_step)`."""
     ma, mb = a.loaded.model, b.loaded.model
     with _threads(threads) as n_threads:
         # how the threads were chosen, and the load the timings ran under
@@ -360,6 +380,7 @@ def speed(a: _Model, b: _Model, runs: int = RUNS, threads: int | None = None,
             if out["decode_weights"] == "float16":
                 halve(ma)
                 halve(mb)
+            out["decode_step"] = {"a": attach_step(ma, decode_step), "b": attach_step(mb, decode_step)}
             buf = torch.ones(256 << 18) if bandwidth else None  # 256 MB of float32, far above any cache
             probe = (lambda: measure_bandwidth(runs=3, buffer=buf)) if bandwidth else None
             t = time_decoders([ma, mb], runs=runs, probe=probe)
@@ -402,6 +423,7 @@ def speed(a: _Model, b: _Model, runs: int = RUNS, threads: int | None = None,
 def compare(a: str, b: str, texts: list[str] | None = None, lines: list[str] | None = None, *,
             context: int = 512, stride: int | None = None, max_tokens: int | None = None,
             speed_runs: int | None = RUNS, threads: int | None = None, decode_weights: str = "auto",
+            decode_step: str = "auto",
             quiet: bool = True) -> dict:
     """Compare two models (an original and its compressed or tuned version, or any two the tool reads).
 
@@ -415,6 +437,7 @@ def compare(a: str, b: str, texts: list[str] | None = None, lines: list[str] | N
         threads: intra-op threads for the speed section (default: torch's current setting).
         decode_weights: product weights the decoders are timed with (see `decode_weights_for`); perplexities
             are always computed first, in float32.
+        decode_step: "auto" (the compiled decode step where it applies, see `native`) or "torch".
         quiet: no progress lines.
 
     Returns:
@@ -449,6 +472,7 @@ def compare(a: str, b: str, texts: list[str] | None = None, lines: list[str] | N
         - "speed": null when skipped; else {"threads", "runs", "thread_choice": {"threads", "wait_policy",
           "reason", "load_average", "cores"} (see `threads.decide`), "load_average_after"} and for decoders
           "decode_weights" ("float16" or "float32": the product weights both models were timed with),
+          "decode_step" ({"a", "b"}: "compiled kernel", or "torch (why)"; see `attach_step`),
           "prompt": {"tokens", "a_ms", "b_ms", "speedup", "a_runs_ms", "b_runs_ms"} (prefill of 1×tokens,
           last-position logits), "decode": {"cached_tokens", "tokens_per_run", "a_ms", "b_ms" (per token),
           "speedup", "a_runs_ms", "b_runs_ms", "a_bytes", "b_bytes" (bytes read per step), "a_limit_ms",
@@ -463,6 +487,7 @@ def compare(a: str, b: str, texts: list[str] | None = None, lines: list[str] | N
             that split the text differently; unreadable text.
     """
     decode_weights_for(decode_weights, 1)  # a bad choice fails before the slow part
+    check_decode_step(decode_step)
     ma, mb = _open(a, "A"), _open(b, "B")
     sa, sb = ma.loaded.shape, mb.loaded.shape
     if ma.loaded.model.is_decoder != mb.loaded.model.is_decoder:
@@ -491,5 +516,5 @@ def compare(a: str, b: str, texts: list[str] | None = None, lines: list[str] | N
         sentences = [ln for _, group in sets for ln in group]
     if speed_runs:
         report["speed"] = speed(ma, mb, runs=speed_runs, threads=threads, sentences=sentences,
-                                decode_weights=decode_weights)
+                                decode_weights=decode_weights, decode_step=decode_step)
     return report

@@ -75,7 +75,8 @@ def _widened(w: torch.Tensor) -> torch.Tensor:
     """W in float32, in a buffer reused by the next call (read it at once)."""
     buf = _WIDE["buffer"]
     if buf.numel() < w.numel():
-        buf = _WIDE["buffer"] = torch.empty(w.numel())
+        with torch.inference_mode(False):  # an ordinary tensor: usable in and out of inference mode later
+            buf = _WIDE["buffer"] = torch.empty(w.numel())
     return buf[:w.numel()].view(w.shape).copy_(w)
 
 
@@ -383,6 +384,7 @@ class Transformer(nn.Module):
         self.blocks = nn.ModuleList(blocks)
         self.lm_head = lm_head  # a Linear, or None when tied to `tokens`
         self.halved = False  # product weights in float16 (`halve`)
+        self.native = None  # the compiled decode step (`native.attach`), used for one sequence's decode steps
 
     @property
     def kv_widths(self) -> list[tuple[int, int]]:
@@ -420,6 +422,13 @@ class Transformer(nn.Module):
     def forward(self, ids, **kw):
         if not self.is_decoder:
             return self.hidden(ids, **kw)
+        cache = kw.get("cache")
+        if (self.native is not None and cache is not None and ids.shape == (1, 1) and kw.get("attention_mask") is None
+                and not torch.is_grad_enabled()):
+            y = self.native.step(int(ids[0, 0]), kw.get("start", 0), cache)  # (1, 1, V)
+            if torch.isfinite(y).all():
+                return y
+            # beyond float16's range: the step again through torch, which widens the weights (same positions)
         return self._guarded(lambda: self.logits(self.hidden(ids, **kw)))
 
     def last_logits(self, ids, **kw) -> torch.Tensor:

@@ -187,6 +187,10 @@ def _speed_note(sp: dict | None) -> str:
            else f"{sp['threads']} threads")
     note = (f"speed: same process, A and B interleaved, median of {sp['runs']} runs, {how}; "
             f"{bw}speedup = time A / time B")
+    if sp.get("decode_step"):
+        st = sp["decode_step"]
+        note += (f"; decode steps: {st['a']}" if st["a"] == st["b"] else
+                 f"; decode steps: A {st['a']}, B {st['b']}")
     series = [sp[k][f"{side}_runs_ms"] for k in ("prompt", "decode", "batch") if k in sp for side in "ab"]
     spread = max((max(r) / min(r) for r in series if r), default=1.0)
     if spread > 1.3:

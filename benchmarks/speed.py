@@ -1,12 +1,13 @@
 """Decode and prompt speed, and bytes on disk, of compressed SmolLM2 against the dense model, in one run.
 
-    python benchmarks/speed.py [--keeps 0.5,0.7] [--runs 7] [--threads SPEC] [--weights float32,float16] [--plain]
-                               [--disk] [--work DIR]
+    python benchmarks/speed.py [--keeps 0.5,0.7] [--runs 7] [--threads SPEC] [--weights float32,float16,kernel]
+                               [--plain] [--disk] [--work DIR]
     python benchmarks/speed.py --table        # the README's speed and disk tables from the results file
 
 Every model (the dense built-in SmolLM2 in float32 and one compressed copy per --keep, in the tool's default
 format) is loaded into this one process once per kind of product weights (--weights: float32 as loaded, and
-float16 as `compare` and `generate` decode by default, `attncompress.model.halve`), fused as the tool runs it
+float16, `attncompress.model.halve`; kernel: float16 and the compiled decode step, as `compare` and `generate`
+decode by default, `attncompress.native`), fused as the tool runs it
 (`attncompress.model.fuse`; --plain: not), and timed by `attncompress.compare.time_decoders`: per run, a 1×256 prompt (logits of the last position
 only, as generation needs) and 16 single-token decode steps with the KV cache, the models alternating step
 by step; the median over runs is reported. The streaming read bandwidth is sampled once per run
@@ -42,7 +43,7 @@ from pathlib import Path  # noqa: E402
 
 import torch  # noqa: E402
 
-from attncompress import evaluate  # noqa: E402
+from attncompress import evaluate, native  # noqa: E402
 from attncompress.builtin import resolve  # noqa: E402
 from attncompress.compare import decode_bytes, measure_bandwidth, time_decoders  # noqa: E402
 from attncompress.compress import compress  # noqa: E402
@@ -85,14 +86,19 @@ def _commit() -> str:
 
 def timings(paths: list[str], keeps: list[float | None], runs: int, decode_tokens: int, plain: bool,
             weights: list[str]) -> dict:
-    """Every model once per product-weight kind in `weights` ("float32", "float16": `model.halve`), all timed
-    in one interleaved `time_decoders` call; speedups are against the dense model with the same weights."""
+    """Every model once per product-weight kind in `weights` ("float32", "float16": `model.halve`, "kernel":
+    float16 with the compiled decode step, `native.attach`), all timed in one interleaved `time_decoders`
+    call; speedups are against the dense model with the same weights."""
     models, rows = [], []
     for kind in weights:
         for p, keep in zip(paths, keeps):
             m = load_model(resolve(p)).model
             m = m if plain else fuse(m)
-            models.append(halve(m) if kind == "float16" else m)
+            if kind in ("float16", "kernel"):
+                halve(m)
+            if kind == "kernel" and native.attach(m) != "compiled kernel":
+                raise SystemExit(f"the compiled decode step does not apply: {native.attach(m)}")
+            models.append(m)
             rows.append({"model": "dense" if keep is None else f"keep {keep:g}", "keep": keep, "weights": kind})
     buf = torch.ones(256 << 18)  # 256 MB of float32
     t = time_decoders(models, runs=runs, decode_tokens=decode_tokens, probe=lambda: measure_bandwidth(runs=3, buffer=buf))
@@ -211,8 +217,9 @@ def main():
     ap.add_argument("--decode-tokens", type=int, default=16)
     ap.add_argument("--threads", help="auto | N | N:active | N:passive (read at start-up; default auto)")
     ap.add_argument("--plain", action="store_true", help="time the unfused models")
-    ap.add_argument("--weights", default="float32,float16",
-                    help="product weights to time every model with, comma-separated (float32, float16: model.halve)")
+    ap.add_argument("--weights", default="float32,float16,kernel",
+                    help="product weights to time every model with, comma-separated (float32, float16: model.halve, "
+                    "kernel: float16 and the compiled decode step, native.attach)")
     ap.add_argument("--disk", action="store_true", help="also bytes on disk and perplexity per format")
     ap.add_argument("--work", default="/tmp/attncompress-speed", help="where the compressed copies are cached")
     ap.add_argument("--results", default=str(RESULTS))

@@ -8,6 +8,7 @@ import pytest
 import torch
 from click.testing import CliRunner
 
+from attncompress import native
 from attncompress.cli import main
 from attncompress.compare import SCHEMA, compare, embedding_agreement
 from attncompress.compress import compress
@@ -176,8 +177,9 @@ def test_json_has_the_documented_keys(tiny_dirs, compressed, calib_file, lines_f
     assert set(r["quality"]) == PPL_KEYS
     sp = r["speed"]
     assert set(sp) == {"threads", "runs", "thread_choice", "load_average_after", "prompt", "decode", "bandwidth_gb_s",
-                       "decode_weights"}
+                       "decode_weights", "decode_step"}
     assert set(sp["thread_choice"]) == {"threads", "wait_policy", "reason", "load_average", "cores"}
+    assert sp["decode_step"] == {"a": "compiled kernel", "b": "compiled kernel"} or not native.library()
     assert set(sp["prompt"]) == SIDE_KEYS | {"tokens"} and set(sp["decode"]) == DECODE_KEYS
     assert len(sp["decode"]["a_runs_ms"]) == 2 and sp["prompt"]["tokens"] == 256
     # definition: speedup = time of A / time of B

@@ -1,0 +1,112 @@
+"""The compiled decode step (attncompress/native.py) against torch's path through the same halved model."""
+import pytest
+import torch
+
+from attncompress import api, native
+from attncompress.generate import generate_ids
+from attncompress.model import KVCache, fuse, halve
+from conftest import load_model
+
+# Both paths round at the same places (a product's input and output to float16, as `model.product` does) and
+# differ only in the order of float32 sums, so an intermediate value can land one float16 step (2⁻¹¹
+# relative) apart and carry that through the layers; 2e-3 of the logits' scale bounds it with room.
+TOL = 2e-3
+
+
+@pytest.fixture(scope="module")
+def models(tiny_dirs, calib_file, tmp_path_factory):
+    """name → model directory: the tiny llama and qwen2 (biased q, k, v; tied head) dense and compressed at
+    keep 0.4 (narrowed heads, kept rotary pairs, factor pairs in every block)."""
+    out = {}
+    for fam in ("llama", "qwen2"):
+        out[fam] = tiny_dirs[fam][0]
+        d = tmp_path_factory.mktemp(f"native-{fam}") / "m"
+        api.compress(str(tiny_dirs[fam][0]), str(d), keep=0.4, texts=[str(calib_file)], quiet=True, n_blocks=8,
+                     context=32, strategy="uniform")
+        out[fam + " keep 0.4"] = d
+    return out
+
+
+def _halved(path):
+    """The model as `compare` decodes it: fused, product weights in float16."""
+    return halve(fuse(load_model(path).model))
+
+
+def _library():
+    lib = native.library()
+    if lib is None:
+        pytest.skip(f"no compiled kernel here: {native.status()}")
+    return lib
+
+
+@pytest.mark.parametrize("name", ["llama", "qwen2", "llama keep 0.4", "qwen2 keep 0.4"])
+def test_kernel_steps_equal_torch_steps(models, name):
+    _library()
+    m = _halved(models[name])
+    assert native.attach(m) == "compiled kernel"
+    if "keep" in name:
+        assert any(b.attn.w_qk < 8 for b in m.blocks)  # narrowed heads, so kept pairs are exercised
+    ids = torch.randint(0, 96, (1, 20), generator=torch.Generator().manual_seed(3))
+    caches = [KVCache(m, 1, 24), KVCache(m, 1, 24)]
+    kernel, plain = [], []
+    with torch.no_grad():
+        for c in caches:
+            m(ids[:, :6], cache=c, start=0)  # the prompt goes through torch on both
+        for i in range(6, 20):
+            kernel.append(m(ids[:, i:i + 1], cache=caches[0], start=i))
+            keep, m.native = m.native, None
+            plain.append(m(ids[:, i:i + 1], cache=caches[1], start=i))
+            m.native = keep
+    kernel, plain = torch.cat(kernel, 1), torch.cat(plain, 1)  # (1, 14, V)
+    assert not torch.equal(kernel, torch.zeros_like(kernel))
+    torch.testing.assert_close(kernel, plain, atol=TOL * float(plain.abs().max()), rtol=0)
+    for a, b in zip(caches[0].k + caches[0].v, caches[1].k + caches[1].v):  # the same keys and values written
+        torch.testing.assert_close(a, b, atol=TOL * float(b.abs().max()), rtol=0)
+
+
+def test_kernel_threads_give_the_same_logits(models):
+    """Rows split over 1 or 2 threads: each row's sum is the same code, so the bits are the same."""
+    _library()
+    m = _halved(models["llama keep 0.4"])
+    native.attach(m)
+    ids = torch.randint(0, 96, (1, 8), generator=torch.Generator().manual_seed(4))
+    got = []
+    old = torch.get_num_threads()
+    try:
+        for n in (1, 2):
+            torch.set_num_threads(n)
+            c = KVCache(m, 1, 8)
+            with torch.no_grad():
+                m(ids[:, :7], cache=c, start=0)
+                got.append(m(ids[:, 7:8], cache=c, start=7))
+    finally:
+        torch.set_num_threads(old)
+    assert torch.equal(got[0], got[1])
+
+
+def test_kernel_greedy_generation_matches_torch(models):
+    _library()
+    m = _halved(models["qwen2 keep 0.4"])
+    native.attach(m)
+    prompts = [[5, 17, 3, 40]]
+    with torch.inference_mode():
+        fast = generate_ids(m, prompts, max_tokens=12)
+        m.native = None
+        slow = generate_ids(m, prompts, max_tokens=12)
+    assert fast == slow
+
+
+def test_attach_names_why_the_kernel_does_not_apply(tiny_dirs):
+    m = fuse(load_model(tiny_dirs["gpt2"][0]).model)  # learned positions, LayerNorm, no gate
+    assert native.attach(m).startswith("torch (product weights are not float16")
+    assert native.attach(halve(m)) == "torch (learned position or type tables, or an embedding norm)"
+    assert m.native is None
+
+
+def test_a_step_outside_the_cache_is_refused(models):
+    _library()
+    m = _halved(models["llama"])
+    native.attach(m)
+    c = KVCache(m, 1, 4)
+    with torch.no_grad(), pytest.raises(IndexError, match="outside the cache"):
+        m(torch.tensor([[1]]), cache=c, start=4)
