@@ -17,7 +17,7 @@
 #include <stddef.h>
 #include <stdint.h>
 #include <string.h>
-#if defined(__AVX512F__) && defined(__F16C__)
+#if defined(__AVX512F__) && defined(__AVX512BW__) && defined(__AVX512VL__) && defined(__F16C__)
 #include <immintrin.h>
 #define WIDE 1
 #endif
@@ -130,10 +130,16 @@ static void gemv(const Mat *mt, const float *x, float *y) {
             a2 = _mm512_fmadd_ps(_mm512_cvtph_ps(_mm256_loadu_si256((const __m256i *)(r[2] + i))), xv, a2);
             a3 = _mm512_fmadd_ps(_mm512_cvtph_ps(_mm256_loadu_si256((const __m256i *)(r[3] + i))), xv, a3);
         }
+        if (i < C) {  /* the last C mod 16 columns, masked (a factor's rank is rarely a multiple of 16) */
+            const __mmask16 k = (__mmask16)((1u << (C - i)) - 1);
+            const __m512 xv = _mm512_maskz_loadu_ps(k, x + i);
+            a0 = _mm512_fmadd_ps(_mm512_cvtph_ps(_mm256_maskz_loadu_epi16(k, r[0] + i)), xv, a0);
+            a1 = _mm512_fmadd_ps(_mm512_cvtph_ps(_mm256_maskz_loadu_epi16(k, r[1] + i)), xv, a1);
+            a2 = _mm512_fmadd_ps(_mm512_cvtph_ps(_mm256_maskz_loadu_epi16(k, r[2] + i)), xv, a2);
+            a3 = _mm512_fmadd_ps(_mm512_cvtph_ps(_mm256_maskz_loadu_epi16(k, r[3] + i)), xv, a3);
+        }
         s[0] = _mm512_reduce_add_ps(a0), s[1] = _mm512_reduce_add_ps(a1);
         s[2] = _mm512_reduce_add_ps(a2), s[3] = _mm512_reduce_add_ps(a3);
-        for (; i < C; i++)
-            for (int q = 0; q < 4; q++) s[q] += half_to_float(r[q][i]) * x[i];
 #else
         for (int q = 0; q < 4; q++) {
             float acc = 0.f;
