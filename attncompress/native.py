@@ -86,21 +86,25 @@ def library():
     if cc is None:
         _LIB["why"] = "no C compiler found ($CC, gcc or cc)"
         return None
-    src = SOURCE.read_bytes()
-    key = hashlib.sha256(src + " ".join((cc,) + FLAGS).encode() + _cpu_identity().encode()).hexdigest()[:16]
-    out = cache_dir() / f"decode_step-{key}.so"
-    if not out.exists():
-        out.parent.mkdir(parents=True, exist_ok=True)
-        fd, tmp = tempfile.mkstemp(suffix=".so", dir=out.parent)
-        os.close(fd)
-        run = subprocess.run([cc, *FLAGS, str(SOURCE), "-o", tmp, "-lm"], capture_output=True, text=True)
-        if run.returncode != 0:
-            os.unlink(tmp)
-            last = (run.stderr.strip().splitlines() or ["no message"])[-1]
-            _LIB["why"] = f"building {SOURCE.name} with {cc} failed: {last}"
-            return None
-        os.replace(tmp, out)  # atomic: a concurrent process sees the whole library or none
-    lib = ctypes.CDLL(str(out))
+    try:
+        src = SOURCE.read_bytes()
+        key = hashlib.sha256(src + " ".join((cc,) + FLAGS).encode() + _cpu_identity().encode()).hexdigest()[:16]
+        out = cache_dir() / f"decode_step-{key}.so"
+        if not out.exists():
+            out.parent.mkdir(parents=True, exist_ok=True)
+            fd, tmp = tempfile.mkstemp(suffix=".so", dir=out.parent)
+            os.close(fd)
+            run = subprocess.run([cc, *FLAGS, str(SOURCE), "-o", tmp, "-lm"], capture_output=True, text=True)
+            if run.returncode != 0:
+                os.unlink(tmp)
+                last = (run.stderr.strip().splitlines() or ["no message"])[-1]
+                _LIB["why"] = f"building {SOURCE.name} with {cc} failed: {last}"
+                return None
+            os.replace(tmp, out)  # atomic: a concurrent process sees the whole library or none
+        lib = ctypes.CDLL(str(out))
+    except OSError as e:  # an unreadable source, an unwritable cache, a library that does not load
+        _LIB["why"] = f"the compiled decode step is unavailable: {e}"
+        return None
     lib.decode_step.argtypes = [ctypes.POINTER(Model), ctypes.c_int32, ctypes.c_int32, ctypes.c_void_p]
     lib.decode_step.restype = None
     lib.work_floats.argtypes = [ctypes.POINTER(Model)]

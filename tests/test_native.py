@@ -110,3 +110,19 @@ def test_a_step_outside_the_cache_is_refused(models):
     c = KVCache(m, 1, 4)
     with torch.no_grad(), pytest.raises(IndexError, match="outside the cache"):
         m(torch.tensor([[1]]), cache=c, start=4)
+
+
+def test_no_compiler_or_a_failed_build_falls_back_to_torch(models, monkeypatch, tmp_path):
+    _library()
+    cc = native._compiler()
+    m = _halved(models["llama"])
+    monkeypatch.setattr(native, "_LIB", {})  # a fresh process's state; restored after the test
+    monkeypatch.setattr(native, "_compiler", lambda: None)
+    assert native.attach(m) == "torch (no C compiler found ($CC, gcc or cc))" and m.native is None
+    monkeypatch.setattr(native, "_compiler", lambda: cc)
+    monkeypatch.setattr(native, "_LIB", {})
+    monkeypatch.setenv("ATTNCOMPRESS_CACHE", str(tmp_path))
+    monkeypatch.setattr(native, "FLAGS", native.FLAGS + ("-fno-such-flag",))
+    got = native.attach(m)
+    assert got.startswith("torch (building decode_step.c with") and m.native is None, got
+    assert not list(tmp_path.glob("*.so"))  # no half-written library left behind
