@@ -164,7 +164,7 @@ class DecodeKernel:
     """The compiled decode step bound to one model (its tensors are read in place, not copied)."""
 
     def __init__(self, model, lib):
-        self.model, self.lib = model, lib
+        self.lib = lib  # the tensors are held in self._keep, not the model (no reference cycle)
         sh = model.shape
         self.layers = (Layer * len(model.blocks))()
         self._keep = []  # tensors whose addresses the structs hold
