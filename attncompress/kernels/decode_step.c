@@ -114,10 +114,9 @@ int64_t work_floats(const Model *m) { return (int64_t)BUFFERS * widest(m); }
 #define AHEAD 2
 
 /* y = round_half(W x) + bias for rounded x, rows split over the team (a barrier at the end). */
-static void gemv(const Mat *mt, const float *x, float *y) {
-    const int32_t R = mt->rows, C = mt->cols, blocks = (R + 3) / 4;
-    #pragma omp for schedule(static)
-    for (int32_t b = 0; b < blocks; b++) {
+static inline void gemv_block(const Mat *mt, const float *x, float *y, int32_t b) {
+    const int32_t R = mt->rows, C = mt->cols;
+    {
         const int32_t j0 = 4 * b, nr = R - j0 < 4 ? R - j0 : 4;
         const uint16_t *r[4];
         for (int q = 0; q < 4; q++) r[q] = mt->w + (size_t)(j0 + (q < nr ? q : 0)) * C;
@@ -153,6 +152,24 @@ static void gemv(const Mat *mt, const float *x, float *y) {
         }
 #endif
         for (int q = 0; q < nr; q++) y[j0 + q] = round_half(s[q]) + (mt->bias ? mt->bias[j0 + q] : 0.f);
+    }
+}
+
+static void gemv(const Mat *mt, const float *x, float *y) {
+    const int32_t blocks = (mt->rows + 3) / 4;
+    #pragma omp for schedule(static)
+    for (int32_t b = 0; b < blocks; b++) gemv_block(mt, x, y, b);
+}
+
+/* Up to 3 independent products in one loop over all their blocks (one barrier instead of one each). */
+static void gemv_parts(const Mat *const *mts, const float *const *xs, float *const *ys, int n) {
+    int32_t start[4] = {0};
+    for (int i = 0; i < n; i++) start[i + 1] = start[i] + (mts[i]->rows + 3) / 4;
+    #pragma omp for schedule(static)
+    for (int32_t b = 0; b < start[n]; b++) {
+        int i = 0;
+        while (b >= start[i + 1]) i++;
+        gemv_block(mts[i], xs[i], ys[i], b - start[i]);
     }
 }
 
@@ -208,16 +225,21 @@ static void projection(const Mat *first, const Mat *second, const float *x, floa
 static void shared_input(const Mat *first, const int32_t *sizes, const Mat *second, int parts, const float *x,
                          float *t, float **bufs, const float **out) {
     gemv(first, x, t);
+    const Mat *mts[3];
+    const float *xs[3];
+    float *ys[3];
+    int n = 0;
     int32_t off = 0;
     for (int i = 0; i < parts; i++) {
-        if (second[i].w) {
-            gemv(&second[i], t + off, bufs[i]);  /* t holds rounded values: the second product's input */
+        if (second[i].w) {  /* t holds rounded values: the second product's input */
+            mts[n] = &second[i], xs[n] = t + off, ys[n++] = bufs[i];
             out[i] = bufs[i];
         } else {
             out[i] = t + off;
         }
         off += sizes[i];
     }
+    if (n) gemv_parts(mts, xs, ys, n);
 }
 
 static void attention(const Model *m, const Layer *L, const float *q, const float *k, const float *v,
