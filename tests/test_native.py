@@ -39,8 +39,18 @@ def _library():
     return lib
 
 
-@pytest.mark.parametrize("name", ["llama", "qwen2", "llama keep 0.4", "qwen2 keep 0.4"])
-def test_kernel_steps_equal_torch_steps(models, name):
+def _portable(monkeypatch, tmp_path) -> None:
+    """Build the library without AVX-512 (its plain C path) in a private cache, for this test only."""
+    monkeypatch.setattr(native, "_LIB", {})
+    monkeypatch.setenv("ATTNCOMPRESS_CACHE", str(tmp_path))
+    monkeypatch.setattr(native, "FLAGS", tuple(f if f != "-march=native" else "-march=x86-64-v2" for f in native.FLAGS))
+
+
+@pytest.mark.parametrize("name,portable", [("llama", False), ("qwen2", False), ("llama keep 0.4", False),
+                                           ("qwen2 keep 0.4", False), ("qwen2 keep 0.4", True)])
+def test_kernel_steps_equal_torch_steps(models, name, portable, monkeypatch, tmp_path):
+    if portable:
+        _portable(monkeypatch, tmp_path)
     _library()
     m = _halved(models[name])
     assert native.attach(m) == "compiled kernel"

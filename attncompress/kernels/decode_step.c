@@ -113,48 +113,47 @@ int64_t work_floats(const Model *m) { return (int64_t)BUFFERS * widest(m); }
  * interleaved run each). */
 #define AHEAD 2
 
-/* y = round_half(W x) + bias for rounded x, rows split over the team (a barrier at the end). */
+/* Rows 4b..4b+3 of y = round_half(W x) + bias for rounded x. */
 static inline void gemv_block(const Mat *mt, const float *x, float *y, int32_t b) {
     const int32_t R = mt->rows, C = mt->cols;
-    {
-        const int32_t j0 = 4 * b, nr = R - j0 < 4 ? R - j0 : 4;
-        const uint16_t *r[4];
-        for (int q = 0; q < 4; q++) r[q] = mt->w + (size_t)(j0 + (q < nr ? q : 0)) * C;
-        float s[4];
+    const int32_t j0 = 4 * b, nr = R - j0 < 4 ? R - j0 : 4;
+    const uint16_t *r[4];
+    for (int q = 0; q < 4; q++) r[q] = mt->w + (size_t)(j0 + (q < nr ? q : 0)) * C;
+    float s[4];
 #ifdef WIDE
-        __m512 a0 = _mm512_setzero_ps(), a1 = a0, a2 = a0, a3 = a0;
-        int32_t i = 0;
-        for (; i + 16 <= C; i += 16) {
-            const __m512 xv = _mm512_loadu_ps(x + i);
-            const char *ahead = (const char *)(r[0] + (size_t)AHEAD * 4 * C) + 8 * (size_t)i;
-            _mm_prefetch(ahead, _MM_HINT_T0);
-            _mm_prefetch(ahead + 64, _MM_HINT_T0);
-            a0 = _mm512_fmadd_ps(_mm512_cvtph_ps(_mm256_loadu_si256((const __m256i *)(r[0] + i))), xv, a0);
-            a1 = _mm512_fmadd_ps(_mm512_cvtph_ps(_mm256_loadu_si256((const __m256i *)(r[1] + i))), xv, a1);
-            a2 = _mm512_fmadd_ps(_mm512_cvtph_ps(_mm256_loadu_si256((const __m256i *)(r[2] + i))), xv, a2);
-            a3 = _mm512_fmadd_ps(_mm512_cvtph_ps(_mm256_loadu_si256((const __m256i *)(r[3] + i))), xv, a3);
-        }
-        if (i < C) {  /* the last C mod 16 columns, masked (a factor's rank is rarely a multiple of 16) */
-            const __mmask16 k = (__mmask16)((1u << (C - i)) - 1);
-            const __m512 xv = _mm512_maskz_loadu_ps(k, x + i);
-            a0 = _mm512_fmadd_ps(_mm512_cvtph_ps(_mm256_maskz_loadu_epi16(k, r[0] + i)), xv, a0);
-            a1 = _mm512_fmadd_ps(_mm512_cvtph_ps(_mm256_maskz_loadu_epi16(k, r[1] + i)), xv, a1);
-            a2 = _mm512_fmadd_ps(_mm512_cvtph_ps(_mm256_maskz_loadu_epi16(k, r[2] + i)), xv, a2);
-            a3 = _mm512_fmadd_ps(_mm512_cvtph_ps(_mm256_maskz_loadu_epi16(k, r[3] + i)), xv, a3);
-        }
-        s[0] = _mm512_reduce_add_ps(a0), s[1] = _mm512_reduce_add_ps(a1);
-        s[2] = _mm512_reduce_add_ps(a2), s[3] = _mm512_reduce_add_ps(a3);
-#else
-        for (int q = 0; q < 4; q++) {
-            float acc = 0.f;
-            for (int32_t i = 0; i < C; i++) acc += half_to_float(r[q][i]) * x[i];
-            s[q] = acc;
-        }
-#endif
-        for (int q = 0; q < nr; q++) y[j0 + q] = round_half(s[q]) + (mt->bias ? mt->bias[j0 + q] : 0.f);
+    __m512 a0 = _mm512_setzero_ps(), a1 = a0, a2 = a0, a3 = a0;
+    int32_t i = 0;
+    for (; i + 16 <= C; i += 16) {
+        const __m512 xv = _mm512_loadu_ps(x + i);
+        const char *ahead = (const char *)(r[0] + (size_t)AHEAD * 4 * C) + 8 * (size_t)i;
+        _mm_prefetch(ahead, _MM_HINT_T0);
+        _mm_prefetch(ahead + 64, _MM_HINT_T0);
+        a0 = _mm512_fmadd_ps(_mm512_cvtph_ps(_mm256_loadu_si256((const __m256i *)(r[0] + i))), xv, a0);
+        a1 = _mm512_fmadd_ps(_mm512_cvtph_ps(_mm256_loadu_si256((const __m256i *)(r[1] + i))), xv, a1);
+        a2 = _mm512_fmadd_ps(_mm512_cvtph_ps(_mm256_loadu_si256((const __m256i *)(r[2] + i))), xv, a2);
+        a3 = _mm512_fmadd_ps(_mm512_cvtph_ps(_mm256_loadu_si256((const __m256i *)(r[3] + i))), xv, a3);
     }
+    if (i < C) {  /* the last C mod 16 columns, masked (a factor's rank is rarely a multiple of 16) */
+        const __mmask16 k = (__mmask16)((1u << (C - i)) - 1);
+        const __m512 xv = _mm512_maskz_loadu_ps(k, x + i);
+        a0 = _mm512_fmadd_ps(_mm512_cvtph_ps(_mm256_maskz_loadu_epi16(k, r[0] + i)), xv, a0);
+        a1 = _mm512_fmadd_ps(_mm512_cvtph_ps(_mm256_maskz_loadu_epi16(k, r[1] + i)), xv, a1);
+        a2 = _mm512_fmadd_ps(_mm512_cvtph_ps(_mm256_maskz_loadu_epi16(k, r[2] + i)), xv, a2);
+        a3 = _mm512_fmadd_ps(_mm512_cvtph_ps(_mm256_maskz_loadu_epi16(k, r[3] + i)), xv, a3);
+    }
+    s[0] = _mm512_reduce_add_ps(a0), s[1] = _mm512_reduce_add_ps(a1);
+    s[2] = _mm512_reduce_add_ps(a2), s[3] = _mm512_reduce_add_ps(a3);
+#else
+    for (int q = 0; q < 4; q++) {
+        float acc = 0.f;
+        for (int32_t i = 0; i < C; i++) acc += half_to_float(r[q][i]) * x[i];
+        s[q] = acc;
+    }
+#endif
+    for (int q = 0; q < nr; q++) y[j0 + q] = round_half(s[q]) + (mt->bias ? mt->bias[j0 + q] : 0.f);
 }
 
+/* y = round_half(W x) + bias for rounded x, rows split over the team (a barrier at the end). */
 static void gemv(const Mat *mt, const float *x, float *y) {
     const int32_t blocks = (mt->rows + 3) / 4;
     #pragma omp for schedule(static)
