@@ -57,7 +57,7 @@ class Model(ctypes.Structure):
                 ("eps", ctypes.c_float), ("scale", ctypes.c_float),
                 ("tokens_half", ctypes.c_void_p), ("tokens_float", ctypes.c_void_p),
                 ("final_norm", ctypes.c_void_p), ("head", Mat), ("layers", ctypes.POINTER(Layer)),
-                ("work", ctypes.c_void_p)]
+                ("work", ctypes.c_void_p), ("width", ctypes.c_int32)]
 
 
 def _cpu_identity() -> str:

@@ -52,6 +52,7 @@ typedef struct {
     Mat head;                     /* (V, d) */
     Layer *layers;
     float *work;                  /* work_floats(model) floats */
+    int32_t width;                /* floats per work buffer, set by work_floats */
 } Model;
 
 static inline float half_to_float(uint16_t h) {
@@ -103,7 +104,11 @@ static int32_t widest(const Model *m) {
 }
 
 #define BUFFERS 9
-int64_t work_floats(const Model *m) { return (int64_t)BUFFERS * widest(m); }
+/* The work area's size for the bound cache; records the buffer width, so a step does not recompute it. */
+int64_t work_floats(Model *m) {
+    m->width = widest(m);
+    return (int64_t)BUFFERS * m->width;
+}
 
 /* Blocks of four rows ahead that a product asks the memory for while it reads the current one: the block's
  * bytes are contiguous, so two cache lines per 16 columns cover the block AHEAD blocks on at the rate this
@@ -277,7 +282,7 @@ static void attention(const Model *m, const Layer *L, const float *q, const floa
 
 /* The logits (vocab,) of `token` at position `pos`; keys and values of every layer written at pos. */
 void decode_step(const Model *m, int32_t token, int32_t pos, float *logits) {
-    const int32_t d = m->d, W = widest(m);
+    const int32_t d = m->d, W = m->width;
     float *x = m->work, *h = x + W, *t = h + W, *b0 = t + W, *b1 = b0 + W, *b2 = b1 + W, *y = b2 + W;
     float *scores = y + W, *f = scores + W;
     if (m->tokens_half) {
