@@ -137,6 +137,30 @@ def test_halved_weights_are_numpys_float16_rounding(tiny_dirs, tmp_path, family)
     assert (got.argmax(-1) == want.argmax(-1)).float().mean() >= 0.9
 
 
+@pytest.mark.parametrize("family", ["llama", "qwen2"])
+def test_halved_weights_lie_in_one_block_in_the_order_a_step_reads_them(tiny_dirs, tmp_path, family):
+    from attncompress.compress import compress
+    from attncompress.model import _product_weights, halve
+    out = tmp_path / "c"
+    compress(str(tiny_dirs[family][0]), str(out), keep=0.5, weights_only=True, quiet=True)  # factor pairs too
+    m = halve(fuse(load_model(out).model))
+    placed = sorted((w.data_ptr(), name, w.numel() * w.element_size()) for name, *_, w in _product_weights(m))
+    names = [n for _, n, _ in placed]
+    # a step reads block 0's q/k/v first (their shared first matrix, then second ones), then o, gate/up, down,
+    # the next block, and the output head last; a factor pair's bᵀ before its a (model.LowRankLinear)
+    assert names[0] == "blocks.0.attn.qkv.first" and names[-1] in ("tokens", "lm_head.weight")
+    blocks = [int(n.split(".")[1]) for n in names[:-1]]
+    assert blocks == sorted(blocks)
+    kinds = [next(i for i, k in enumerate((".qkv", ".attn.", ".gate_up", ".ff.")) if k in n) for n in names[:-1]]
+    assert all((b, k) <= (b2, k2) for b, k, b2, k2 in zip(blocks, kinds, blocks[1:], kinds[1:]))
+    for n in names:
+        if n.endswith(".bt"):
+            assert names.index(n) + 1 == names.index(n[:-3] + ".a")
+    # one block: each tensor starts on a 4 KB boundary right after the previous one
+    assert all(p % 4096 == 0 for p, *_ in placed)
+    assert all(p2 == p + -(-nb // 4096) * 4096 for (p, _, nb), (p2, _, _) in zip(placed, placed[1:]))
+
+
 def test_a_product_input_beyond_float16_range_is_redone_in_float32(tiny_dirs):
     from attncompress.model import halve
     m = fuse(load_model(tiny_dirs["llama"][0]).model)
