@@ -31,7 +31,6 @@ import torch
 
 SOURCE = Path(__file__).resolve().parent / "kernels" / "decode_step.c"
 FLAGS = ("-O3", "-march=native", "-fopenmp", "-shared", "-fPIC")
-MAX_HEAD_WIDTH = 512  # the kernel's per-head query buffer
 
 _LIB: dict = {}  # "lib": the loaded library or None, "why": the reason when None
 
@@ -57,7 +56,8 @@ class Model(ctypes.Structure):
                 ("eps", ctypes.c_float), ("scale", ctypes.c_float),
                 ("tokens_half", ctypes.c_void_p), ("tokens_float", ctypes.c_void_p),
                 ("final_norm", ctypes.c_void_p), ("head", Mat), ("layers", ctypes.POINTER(Layer)),
-                ("work", ctypes.c_void_p), ("width", ctypes.c_int32)]
+                ("work", ctypes.c_void_p), ("width", ctypes.c_int32), ("own", ctypes.c_int32),
+                ("part", ctypes.c_int32), ("w_qk", ctypes.c_int32), ("w_vo", ctypes.c_int32)]
 
 
 def _cpu_identity() -> str:
@@ -150,8 +150,6 @@ def unsupported(model) -> str | None:
             return f"layer {i}: not fused (model.fuse) or no gated feed-forward"
         if ff.act is not torch.nn.functional.silu or not a.causal:
             return f"layer {i}: the activation is not SiLU, or attention is not causal"
-        if max(a.w_qk, a.w_vo) > MAX_HEAD_WIDTH:
-            return f"layer {i}: heads wider than {MAX_HEAD_WIDTH}"
         if a.pairs is not None and 2 * a.inv_freq.shape[1] != a.w_qk:
             return f"layer {i}: rotary pairs do not fill the key width"
         for mod in (a.o, ff.down):

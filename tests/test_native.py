@@ -56,18 +56,20 @@ def test_kernel_steps_equal_torch_steps(models, name, portable, monkeypatch, tmp
     assert native.attach(m) == "compiled kernel"
     if "keep" in name:
         assert any(b.attn.w_qk < 8 for b in m.blocks)  # narrowed heads, so kept pairs are exercised
-    ids = torch.randint(0, 96, (1, 20), generator=torch.Generator().manual_seed(3))
-    caches = [KVCache(m, 1, 24), KVCache(m, 1, 24)]
+    # 70 positions: the kernel's attention works in chunks of 32 cached positions, so steps cross two chunk
+    # boundaries and merge up to three chunks
+    ids = torch.randint(0, 96, (1, 70), generator=torch.Generator().manual_seed(3))
+    caches = [KVCache(m, 1, 72), KVCache(m, 1, 72)]
     kernel, plain = [], []
     with torch.no_grad():
         for c in caches:
             m(ids[:, :6], cache=c, start=0)  # the prompt goes through torch on both
-        for i in range(6, 20):
+        for i in range(6, 70):
             kernel.append(m(ids[:, i:i + 1], cache=caches[0], start=i))
             keep, m.native = m.native, None
             plain.append(m(ids[:, i:i + 1], cache=caches[1], start=i))
             m.native = keep
-    kernel, plain = torch.cat(kernel, 1), torch.cat(plain, 1)  # (1, 14, V)
+    kernel, plain = torch.cat(kernel, 1), torch.cat(plain, 1)  # (1, 64, V)
     assert not torch.equal(kernel, torch.zeros_like(kernel))
     torch.testing.assert_close(kernel, plain, atol=TOL * float(plain.abs().max()), rtol=0)
     for a, b in zip(caches[0].k + caches[0].v, caches[1].k + caches[1].v):  # the same keys and values written
@@ -75,23 +77,25 @@ def test_kernel_steps_equal_torch_steps(models, name, portable, monkeypatch, tmp
 
 
 def test_kernel_threads_give_the_same_logits(models):
-    """Rows split over 1 or 2 threads: each row's sum is the same code, so the bits are the same."""
+    """1, 2 or 3 threads: rows and attention chunks are split the same way for any team, and each row's sum and
+    the chunks' merge are the same code in the same order, so the bits are the same (100 cached positions:
+    four attention chunks, and more chunks than some teams have threads)."""
     _library()
     m = _halved(models["llama keep 0.4"])
     native.attach(m)
-    ids = torch.randint(0, 96, (1, 8), generator=torch.Generator().manual_seed(4))
+    ids = torch.randint(0, 96, (1, 101), generator=torch.Generator().manual_seed(4))
     got = []
     old = torch.get_num_threads()
     try:
-        for n in (1, 2):
+        for n in (1, 2, 3):
             torch.set_num_threads(n)
-            c = KVCache(m, 1, 8)
+            c = KVCache(m, 1, 101)
             with torch.no_grad():
-                m(ids[:, :7], cache=c, start=0)
-                got.append(m(ids[:, 7:8], cache=c, start=7))
+                m(ids[:, :100], cache=c, start=0)
+                got.append(m(ids[:, 100:101], cache=c, start=100))
     finally:
         torch.set_num_threads(old)
-    assert torch.equal(got[0], got[1])
+    assert torch.equal(got[0], got[1]) and torch.equal(got[0], got[2])
 
 
 def test_kernel_greedy_generation_matches_torch(models):

@@ -5,8 +5,11 @@
  *
  * Why: a decode step is ~270 one-row matrix products plus ~1,200 small operations; through torch each small
  * operation costs a few microseconds of dispatch, about half of the step (benchmarks/results/decode_profile.md).
- * Here the whole step is one call and one OpenMP parallel region; the products split their rows over the
- * threads, the small work runs on one thread between barriers.
+ * Here the whole step is one call and one OpenMP parallel region. The products split their rows over the
+ * threads; attention splits the cached positions into fixed chunks; the small work between them (the
+ * residual, the norms, the merge of the chunks) is done by every thread into its own buffers, so a layer
+ * has one barrier per product (5 for a dense layer) and no single-thread section. Every split is the same
+ * for any number of threads, so the bits are too.
  *
  * Rounding follows `model.product` exactly: a product's input is rounded to float16, it accumulates in
  * float32, its output is rounded to float16 and widened, then its bias (float32) is added; the second matrix
@@ -14,6 +17,7 @@
  * and the cache are float32. Only the order of the float32 sums differs from torch's kernels.
  */
 #include <math.h>
+#include <omp.h>
 #include <stddef.h>
 #include <stdint.h>
 #include <string.h>
@@ -52,8 +56,31 @@ typedef struct {
     Mat head;                     /* (V, d) */
     Layer *layers;
     float *work;                  /* work_floats(model) floats */
-    int32_t width;                /* floats per work buffer, set by work_floats */
+    int32_t width;                /* floats per shared work buffer, set by work_floats */
+    int32_t own, part;            /* floats of each thread's own buffers, of the attention partials */
+    int32_t w_qk, w_vo;           /* the widest query/key and value heads of any layer; all set by work_floats */
 } Model;
+
+#define MAX_THREADS 64
+
+/* Built with -DPROFILE (benchmarks/kernel_profile.py): thread 0 adds the time since its previous mark, and the
+ * bytes read, to the phase that just ended. A product's phase ends at its barrier, so it includes the wait for
+ * the slowest thread; the norms and the attention merge run on every thread and count on thread 0. */
+enum { P_NORM, P_QKV, P_QKV2, P_ATTN, P_MERGE, P_O, P_O2, P_GU, P_GATED, P_DOWN, P_DOWN2, P_HEAD, PHASES };
+#ifdef PROFILE
+double profile_seconds[PHASES], profile_bytes[PHASES];
+static double profile_last;
+static void mark(int k, double bytes) {
+    if (omp_get_thread_num()) return;
+    const double now = omp_get_wtime();
+    profile_seconds[k] += now - profile_last, profile_bytes[k] += bytes, profile_last = now;
+}
+#define MARK(k, bytes) mark(k, bytes)
+#else
+#define MARK(k, bytes) ((void)(k))
+#endif
+#define MAT_BYTES(mt) (2.0 * (mt)->rows * (mt)->cols)
+#define CHUNK 32  /* cached positions per attention work unit */
 
 static inline float half_to_float(uint16_t h) {
 #ifdef WIDE
@@ -103,11 +130,18 @@ static int32_t widest(const Model *m) {
     return w;
 }
 
-#define BUFFERS 9
-/* The work area's size for the bound cache; records the buffer width, so a step does not recompute it. */
+#define BUFFERS 7
+/* The work area's size for the bound cache: BUFFERS shared buffers of `width` floats, the attention chunks'
+ * partial results and every layer's rotary cosines and sines, and each thread's own buffers (x, h, y, rotated
+ * queries). Records the sizes, so a step does not recompute them. */
 int64_t work_floats(Model *m) {
+    int32_t wq = 0, wv = 0;
+    for (int l = 0; l < m->n_layers; l++) wq = max32(wq, m->layers[l].w_qk), wv = max32(wv, m->layers[l].w_vo);
     m->width = widest(m);
-    return (int64_t)BUFFERS * m->width;
+    m->w_qk = wq, m->w_vo = wv;
+    m->own = 2 * m->d + m->heads * (wv + wq);
+    m->part = m->heads * ((m->layers[0].cache_len + CHUNK - 1) / CHUNK) * (2 + wv) + m->n_layers * m->kv_heads * wq;
+    return (int64_t)BUFFERS * m->width + m->part + (int64_t)MAX_THREADS * m->own;
 }
 
 /* Blocks of four rows ahead that a product asks the memory for while it reads the current one: the block's
@@ -198,29 +232,141 @@ static inline float dot(const float *a, const float *b, int32_t n) {
 #endif
 }
 
+/* e^x, to about 2 float32 ulps (x clamped to [-87.3, 88.7], where float32 neither overflows nor goes
+ * subnormal): x = n ln2 + r with |r| ≤ ln2 / 2, e^r by its Taylor series to r⁶ (the next term is below
+ * 2⁻²³ of the sum), times 2ⁿ. */
+#ifdef WIDE
+static inline __m512 exp16(__m512 x) {
+    x = _mm512_min_ps(_mm512_max_ps(x, _mm512_set1_ps(-87.3f)), _mm512_set1_ps(88.7f));
+    const __m512 n = _mm512_roundscale_ps(_mm512_mul_ps(x, _mm512_set1_ps(1.44269504f)), _MM_FROUND_TO_NEAREST_INT);
+    __m512 r = _mm512_fnmadd_ps(n, _mm512_set1_ps(0.693145752f), x);  /* ln2 in two parts: hi exact in n·hi */
+    r = _mm512_fnmadd_ps(n, _mm512_set1_ps(1.42860677e-6f), r);
+    __m512 p = _mm512_set1_ps(1.f / 720);
+    p = _mm512_fmadd_ps(p, r, _mm512_set1_ps(1.f / 120));
+    p = _mm512_fmadd_ps(p, r, _mm512_set1_ps(1.f / 24));
+    p = _mm512_fmadd_ps(p, r, _mm512_set1_ps(1.f / 6));
+    p = _mm512_fmadd_ps(p, r, _mm512_set1_ps(0.5f));
+    p = _mm512_fmadd_ps(p, r, _mm512_set1_ps(1.f));
+    p = _mm512_fmadd_ps(p, r, _mm512_set1_ps(1.f));
+    return _mm512_scalef_ps(p, n);
+}
+#endif
+
+/* x[i] = e^(x[i] - mx) over n floats; returns their sum. */
+static float exp_shifted(float *x, int32_t n, float mx) {
+#ifdef WIDE
+    const __m512 m = _mm512_set1_ps(mx);
+    __m512 acc = _mm512_setzero_ps();
+    int32_t i = 0;
+    for (; i + 16 <= n; i += 16) {
+        const __m512 e = exp16(_mm512_sub_ps(_mm512_loadu_ps(x + i), m));
+        _mm512_storeu_ps(x + i, e);
+        acc = _mm512_add_ps(acc, e);
+    }
+    if (i < n) {
+        const __mmask16 k = (__mmask16)((1u << (n - i)) - 1);
+        const __m512 e = _mm512_maskz_mov_ps(k, exp16(_mm512_sub_ps(_mm512_maskz_loadu_ps(k, x + i), m)));
+        _mm512_mask_storeu_ps(x + i, k, e);
+        acc = _mm512_add_ps(acc, e);
+    }
+    return _mm512_reduce_add_ps(acc);
+#else
+    float z = 0.f;
+    for (int32_t i = 0; i < n; i++) z += (x[i] = expf(x[i] - mx));
+    return z;
+#endif
+}
+
+/* acc[i] += p · v[i] over n floats. */
+static inline void axpy(float *acc, float p, const float *v, int32_t n) {
+#ifdef WIDE
+    const __m512 pv = _mm512_set1_ps(p);
+    int32_t i = 0;
+    for (; i + 16 <= n; i += 16)
+        _mm512_storeu_ps(acc + i, _mm512_fmadd_ps(pv, _mm512_loadu_ps(v + i), _mm512_loadu_ps(acc + i)));
+    if (i < n) {
+        const __mmask16 k = (__mmask16)((1u << (n - i)) - 1);
+        _mm512_mask_storeu_ps(acc + i, k, _mm512_fmadd_ps(pv, _mm512_maskz_loadu_ps(k, v + i),
+                                                          _mm512_maskz_loadu_ps(k, acc + i)));
+    }
+#else
+    for (int32_t i = 0; i < n; i++) acc[i] += p * v[i];
+#endif
+}
+
+/* Ask the memory for the n floats at p (the cache's rows come from memory: the weights read since evicted them). */
+static inline void prefetch_row(const float *p, int32_t n) {
+#ifdef WIDE
+    for (int32_t i = 0; i < n; i += 16) _mm_prefetch((const char *)(p + i), _MM_HINT_T0);
+#else
+    (void)p, (void)n;
+#endif
+}
+
+/* acc = Σ_t p[t] · v[t] over n rows of w floats (v row-major): each 16 columns summed in registers over the
+ * rows (two chains), so no sum waits on a store. */
+static void weighted_rows(float *acc, const float *p, const float *v, int32_t n, int32_t w) {
+#ifdef WIDE
+    for (int32_t i = 0; i < w; i += 16) {
+        const __mmask16 k = (__mmask16)(w - i >= 16 ? 0xffff : (1u << (w - i)) - 1);
+        __m512 a0 = _mm512_setzero_ps(), a1 = a0;
+        int32_t t = 0;
+        for (; t + 2 <= n; t += 2) {
+            a0 = _mm512_fmadd_ps(_mm512_set1_ps(p[t]), _mm512_maskz_loadu_ps(k, v + (size_t)t * w + i), a0);
+            a1 = _mm512_fmadd_ps(_mm512_set1_ps(p[t + 1]), _mm512_maskz_loadu_ps(k, v + (size_t)(t + 1) * w + i), a1);
+        }
+        if (t < n) a0 = _mm512_fmadd_ps(_mm512_set1_ps(p[t]), _mm512_maskz_loadu_ps(k, v + (size_t)t * w + i), a0);
+        _mm512_mask_storeu_ps(acc + i, k, _mm512_add_ps(a0, a1));
+    }
+#else
+    for (int32_t i = 0; i < w; i++) acc[i] = 0.f;
+    for (int32_t t = 0; t < n; t++) axpy(acc, p[t], v + (size_t)t * w, w);
+#endif
+}
+
+/* out[i] = round_half(x[i] · r · w[i]) over n floats (w NULL: 1); out may be x. */
+static void round_scaled(const float *x, const float *w, float r, int32_t n, float *out) {
+    int32_t i = 0;
+#ifdef WIDE
+    const __m512 rv = _mm512_set1_ps(r);
+    for (; i < n; i += 16) {
+        const __mmask16 k = (__mmask16)(n - i >= 16 ? 0xffff : (1u << (n - i)) - 1);
+        __m512 v = _mm512_mul_ps(_mm512_maskz_loadu_ps(k, x + i), rv);
+        if (w) v = _mm512_mul_ps(v, _mm512_maskz_loadu_ps(k, w + i));
+        v = _mm512_cvtph_ps(_mm512_cvtps_ph(v, _MM_FROUND_TO_NEAREST_INT | _MM_FROUND_NO_EXC));
+        _mm512_mask_storeu_ps(out + i, k, v);
+    }
+#endif
+    for (; i < n; i++) out[i] = round_half(x[i] * r * (w ? w[i] : 1.0f));
+}
+
 /* out = round_half(x * rsqrt(mean(x²) + eps) * w): the norm and the rounding of the next product's input. */
 static void rms_norm_rounded(const float *x, const float *w, float eps, int32_t d, float *out) {
     const float ss = dot(x, x, d), r = 1.0f / sqrtf(ss / (float)d + eps);
-    for (int32_t i = 0; i < d; i++) out[i] = round_half(x[i] * r * w[i]);
+    round_scaled(x, w, r, d, out);
 }
 
-/* Rotate each kept pair (i, i + p) of the w = 2p values at x by the angle pos · inv[i] (model.rotate). */
-static void rotate(float *x, const float *inv, int32_t w, int32_t pos) {
+/* Rotate each kept pair (i, i + p) of the w = 2p values at x by the angle whose cosine and sine are c[i], s[i]
+ * (model.rotate); out may be x. */
+static void rotate(const float *x, const float *c, const float *s, int32_t w, float *out) {
     const int32_t p = w / 2;
     for (int32_t i = 0; i < p; i++) {
-        const float a = (float)pos * inv[i], c = cosf(a), s = sinf(a), x1 = x[i], x2 = x[i + p];
-        x[i] = x1 * c - x2 * s;
-        x[i + p] = x2 * c + x1 * s;
+        const float x1 = x[i], x2 = x[i + p];
+        out[i] = x1 * c[i] - x2 * s[i];
+        out[i + p] = x2 * c[i] + x1 * s[i];
     }
 }
 
 /* out = a projection of x: one matrix, or a factor pair through tmp (second->w NULL: one). */
-static void projection(const Mat *first, const Mat *second, const float *x, float *tmp, float *out) {
+static void projection(const Mat *first, const Mat *second, const float *x, float *tmp, float *out, int phase) {
     if (second->w) {
         gemv(first, x, tmp);
+        MARK(phase, MAT_BYTES(first));
         gemv(second, tmp, out);
+        MARK(phase + 1, MAT_BYTES(second));
     } else {
         gemv(first, x, out);
+        MARK(phase, MAT_BYTES(first));
     }
 }
 
@@ -229,6 +375,7 @@ static void projection(const Mat *first, const Mat *second, const float *x, floa
 static void shared_input(const Mat *first, const int32_t *sizes, const Mat *second, int parts, const float *x,
                          float *t, float **bufs, const float **out) {
     gemv(first, x, t);
+    MARK(P_QKV, MAT_BYTES(first));
     const Mat *mts[3];
     const float *xs[3];
     float *ys[3];
@@ -244,81 +391,181 @@ static void shared_input(const Mat *first, const int32_t *sizes, const Mat *seco
         off += sizes[i];
     }
     if (n) gemv_parts(mts, xs, ys, n);
+    double bytes = 0;
+    for (int i = 0; i < n; i++) bytes += MAT_BYTES(mts[i]);
+    MARK(P_QKV2, bytes);
+    (void)bytes;
 }
 
+/* The attention of every query head, its output rounded into this thread's y (the o product's input). The
+ * work units are (key/value group, chunk of CHUNK cached positions); a unit computes, for the group's query
+ * heads, the chunk's largest score, Σ e^(score - largest) and the values weighted by those into `part`. The
+ * unit holding `pos` first writes the group's new key (rotated) and value into the cache; no other unit
+ * reads that position. After the barrier every thread merges the chunks in order (softmax of the whole row). */
 static void attention(const Model *m, const Layer *L, const float *q, const float *k, const float *v,
-                      int32_t pos, float *scores, float *y) {
+                      int32_t pos, float *scores, float *part, const float *cs, float *own_q, float *y) {
     const int32_t g = m->kv_heads, rep = m->heads / m->kv_heads, wq = L->w_qk, wv = L->w_vo, T = L->cache_len;
-    #pragma omp single
-    for (int32_t j = 0; j < g; j++) {  /* the new key (rotated) and value into the cache */
-        float *kc = L->k_cache + ((size_t)j * T + pos) * wq;
-        memcpy(kc, k + (size_t)j * wq, sizeof(float) * wq);
-        if (L->inv_freq) rotate(kc, L->inv_freq + (size_t)j * (wq / 2), wq, pos);
-        memcpy(L->v_cache + ((size_t)j * T + pos) * wv, v + (size_t)j * wv, sizeof(float) * wv);
+    const int32_t p = wq / 2, chunks = pos / CHUNK + 1, stride = 2 + wv;
+    const float *sn = cs + g * p;
+    if (L->inv_freq) {  /* every query head rotated, on every thread */
+        for (int32_t hd = 0; hd < m->heads; hd++) {
+            const int32_t j = hd / rep;
+            rotate(q + (size_t)hd * wq, cs + (size_t)j * p, sn + (size_t)j * p, wq, own_q + (size_t)hd * wq);
+        }
+    } else {
+        memcpy(own_q, q, sizeof(float) * m->heads * wq);
     }
     #pragma omp for schedule(static)
-    for (int32_t hd = 0; hd < m->heads; hd++) {
-        const int32_t j = hd / rep;  /* query head hd reads key/value group j */
-        float qh[512];
-        memcpy(qh, q + (size_t)hd * wq, sizeof(float) * wq);
-        if (L->inv_freq) rotate(qh, L->inv_freq + (size_t)j * (wq / 2), wq, pos);
-        float *sc = scores + (size_t)hd * T, mx = -INFINITY;
-        const float *kc = L->k_cache + (size_t)j * T * wq, *vc = L->v_cache + (size_t)j * T * wv;
-        for (int32_t t = 0; t <= pos; t++) {
-            sc[t] = dot(qh, kc + (size_t)t * wq, wq) * m->scale;
-            mx = sc[t] > mx ? sc[t] : mx;
+    for (int32_t u = 0; u < g * chunks; u++) {
+        const int32_t j = u / chunks, c = u % chunks, lo = c * CHUNK, hi = c == chunks - 1 ? pos + 1 : lo + CHUNK;
+        float *kc = L->k_cache + (size_t)j * T * wq, *vc = L->v_cache + (size_t)j * T * wv;
+        if (c == chunks - 1) {  /* the new key and value */
+            if (L->inv_freq) {
+                rotate(k + (size_t)j * wq, cs + (size_t)j * p, sn + (size_t)j * p, wq, kc + (size_t)pos * wq);
+            } else {
+                memcpy(kc + (size_t)pos * wq, k + (size_t)j * wq, sizeof(float) * wq);
+            }
+            memcpy(vc + (size_t)pos * wv, v + (size_t)j * wv, sizeof(float) * wv);
         }
-        float z = 0.f;
-        for (int32_t t = 0; t <= pos; t++) z += (sc[t] = expf(sc[t] - mx));
-        float *yh = y + (size_t)hd * wv;
-        for (int32_t i = 0; i < wv; i++) yh[i] = 0.f;
-        for (int32_t t = 0; t <= pos; t++) {
-            const float p = sc[t] / z;
-            for (int32_t i = 0; i < wv; i++) yh[i] += p * vc[(size_t)t * wv + i];
+        for (int32_t t = lo; t < hi; t++) {  /* each key row once, for all the group's query heads */
+            prefetch_row(kc + (size_t)(t + 8 < hi ? t + 8 : t) * wq, wq);  /* keys 8 rows on, values now */
+            prefetch_row(vc + (size_t)t * wv, wv);
+            for (int32_t r = 0; r < rep; r++)
+                scores[(size_t)(j * rep + r) * T + t] = dot(own_q + (size_t)(j * rep + r) * wq, kc + (size_t)t * wq, wq);
         }
-        for (int32_t i = 0; i < wv; i++) yh[i] = round_half(yh[i]);  /* the o product's input */
+        for (int32_t r = 0; r < rep; r++) {
+            const int32_t hd = j * rep + r;
+            float *sc = scores + (size_t)hd * T, mx = -INFINITY;
+            for (int32_t t = lo; t < hi; t++) {
+                sc[t] *= m->scale;
+                mx = sc[t] > mx ? sc[t] : mx;
+            }
+            float *out = part + ((size_t)hd * chunks + c) * stride;
+            out[0] = mx, out[1] = exp_shifted(sc + lo, hi - lo, mx);
+            weighted_rows(out + 2, sc + lo, vc + (size_t)lo * wv, hi - lo, wv);
+        }
     }
+    MARK(P_ATTN, 4.0 * g * (pos + 1) * (wq + wv));
+    for (int32_t hd = 0; hd < m->heads; hd++) {  /* the merge, in chunk order (the same for any threads) */
+        const float *ph = part + (size_t)hd * chunks * stride;
+        float mx = -INFINITY, z = 0.f, *yh = y + (size_t)hd * wv;
+        for (int32_t c = 0; c < chunks; c++) mx = ph[c * stride] > mx ? ph[c * stride] : mx;
+        for (int32_t i = 0; i < wv; i++) yh[i] = 0.f;
+        for (int32_t c = 0; c < chunks; c++) {
+            const float w = expf(ph[c * stride] - mx);
+            z += w * ph[c * stride + 1];
+            axpy(yh, w, ph + c * stride + 2, wv);
+        }
+        round_scaled(yh, NULL, 1.0f / z, wv, yh);
+    }
+    MARK(P_MERGE, 0);
+}
+
+/* f = round_half(silu(gate) · up) of the feed-forward, the down product's input. A part with a matrix in
+ * mats[i] is computed here into outs[i] (a dense pair: both are row ranges of `first`; a factor pair's part:
+ * its second matrix); a part without one (NULL) is already in outs[i] (the first product's output). Each
+ * thread takes a contiguous range of 16-row chunks (the split `schedule(static)` would make) and reads its
+ * gate rows, then its up rows, as two long streams, then writes their f: no barrier between. */
+static void gated(const Mat *const *mats, const float *const *xs, float *const *outs, int32_t n, float *f) {
+    const int32_t chunks = (n + 15) / 16, nt = omp_get_num_threads(), tid = omp_get_thread_num();
+    const int32_t j0 = 16 * (int32_t)((int64_t)chunks * tid / nt);
+    const int32_t j1 = 16 * (int32_t)((int64_t)chunks * (tid + 1) / nt) < n ? 16 * (int32_t)((int64_t)chunks * (tid + 1) / nt) : n;
+    for (int i = 0; i < 2; i++)
+        if (mats[i])
+            for (int32_t b = j0 / 4; b < (j1 + 3) / 4; b++) gemv_block(mats[i], xs[i], outs[i], b);
+    const float *gt = outs[0], *up = outs[1];
+    int32_t j = j0;
+#ifdef WIDE
+    for (; j < j1; j += 16) {
+        const __mmask16 k = (__mmask16)(j1 - j >= 16 ? 0xffff : (1u << (j1 - j)) - 1);
+        const __m512 a = _mm512_maskz_loadu_ps(k, gt + j), u = _mm512_maskz_loadu_ps(k, up + j);
+        const __m512 e = exp16(_mm512_sub_ps(_mm512_setzero_ps(), a));
+        const __m512 v = _mm512_mul_ps(_mm512_div_ps(a, _mm512_add_ps(_mm512_set1_ps(1.f), e)), u);
+        const __m512 r = _mm512_cvtph_ps(_mm512_cvtps_ph(v, _MM_FROUND_TO_NEAREST_INT | _MM_FROUND_NO_EXC));
+        _mm512_mask_storeu_ps(f + j, k, r);
+    }
+#else
+    for (; j < j1; j++) f[j] = round_half(gt[j] / (1.0f + expf(-gt[j])) * up[j]);
+#endif
+    #pragma omp barrier
+    MARK(P_GATED, (mats[0] ? MAT_BYTES(mats[0]) : 0) + (mats[1] ? MAT_BYTES(mats[1]) : 0));
 }
 
 /* The logits (vocab,) of `token` at position `pos`; keys and values of every layer written at pos. */
 void decode_step(const Model *m, int32_t token, int32_t pos, float *logits) {
     const int32_t d = m->d, W = m->width;
-    float *x = m->work, *h = x + W, *t = h + W, *b0 = t + W, *b1 = b0 + W, *b2 = b1 + W, *y = b2 + W;
-    float *scores = y + W, *f = scores + W;
-    if (m->tokens_half) {
-        for (int32_t i = 0; i < d; i++) x[i] = half_to_float(m->tokens_half[(size_t)token * d + i]);
-    } else {
-        memcpy(x, m->tokens_float + (size_t)token * d, sizeof(float) * d);
-    }
-    #pragma omp parallel num_threads(m->threads)
+    float *t = m->work, *b0 = t + W, *b1 = b0 + W, *b2 = b1 + W, *scores = b2 + W, *f = scores + W;
+    const int32_t chunks = (m->layers[0].cache_len + CHUNK - 1) / CHUNK;
+    float *gbuf = f + W, *part = gbuf + W, *angles = part + (size_t)m->heads * chunks * (2 + m->w_vo);
+    float *own0 = part + m->part;
+    const int threads = m->threads < MAX_THREADS ? m->threads : MAX_THREADS;
+#ifdef PROFILE
+    profile_last = omp_get_wtime();
+#endif
+    #pragma omp parallel num_threads(threads)
     {
+        float *x = own0 + (size_t)omp_get_thread_num() * m->own, *h = x + d, *y = h + d;
+        float *qr = y + (size_t)m->heads * m->w_vo;
+        #pragma omp for schedule(static)
+        for (int32_t l = 0; l < m->n_layers; l++) {  /* the rotary angles of this position, every layer */
+            const Layer *L = &m->layers[l];
+            const int32_t gp = m->kv_heads * (L->w_qk / 2);
+            float *cs = angles + (size_t)l * m->kv_heads * m->w_qk, *sn = cs + gp;
+            for (int32_t i = 0; L->inv_freq && i < gp; i++) {
+                const float a = (float)pos * L->inv_freq[i];
+                cs[i] = cosf(a), sn[i] = sinf(a);  /* (one sincosf call, as the compiler merges them) */
+            }
+        }
+        if (m->tokens_half) {
+            for (int32_t i = 0; i < d; i++) x[i] = half_to_float(m->tokens_half[(size_t)token * d + i]);
+        } else {
+            memcpy(x, m->tokens_float + (size_t)token * d, sizeof(float) * d);
+        }
         for (int32_t l = 0; l < m->n_layers; l++) {
             const Layer *L = &m->layers[l];
-            const float *qkv[3], *gu[2];
+            const float *qkv[3];
             float *bufs[3] = {b0, b1, b2};
-            #pragma omp single
+            if (l > 0)
+                for (int32_t i = 0; i < d; i++) x[i] += b0[i];  /* the last layer's feed-forward output */
             rms_norm_rounded(x, L->attn_norm, m->eps, d, h);
+            MARK(P_NORM, 0);
             shared_input(&L->qkv, L->qkv_sizes, L->qkv_second, 3, h, t, bufs, qkv);
-            attention(m, L, qkv[0], qkv[1], qkv[2], pos, scores, y);
-            projection(&L->o, &L->o_second, y, b1, b0);
-            #pragma omp single
-            {
-                for (int32_t i = 0; i < d; i++) x[i] += b0[i];
-                rms_norm_rounded(x, L->ff_norm, m->eps, d, h);
-            }
-            shared_input(&L->gu, L->gu_sizes, L->gu_second, 2, h, t, bufs, gu);
-            const int32_t n = L->gu_second[0].w ? L->gu_second[0].rows : L->gu_sizes[0];  /* d_ff */
-            #pragma omp for schedule(static)
-            for (int32_t i = 0; i < n; i++) {
-                const float a = gu[0][i];
-                f[i] = round_half(a / (1.0f + expf(-a)) * gu[1][i]);  /* silu(gate) · up, the down input */
-            }
-            projection(&L->down, &L->down_second, f, b2, b0);
-            #pragma omp single
+            attention(m, L, qkv[0], qkv[1], qkv[2], pos, scores, part, angles + (size_t)l * m->kv_heads * m->w_qk,
+                      qr, y);
+            projection(&L->o, &L->o_second, y, b1, b0, P_O);
             for (int32_t i = 0; i < d; i++) x[i] += b0[i];
+            rms_norm_rounded(x, L->ff_norm, m->eps, d, h);
+            MARK(P_NORM, 0);
+            const int32_t n = L->gu_second[0].w ? L->gu_second[0].rows : L->gu_sizes[0];  /* d_ff */
+            const Mat *mats[2];
+            const float *xs[2];
+            float *outs[2];
+            Mat views[2];
+            if (!L->gu_second[0].w && !L->gu_second[1].w) {  /* dense: gate and up rows of `first` here */
+                for (int i = 0; i < 2; i++) {
+                    views[i] = L->gu;
+                    views[i].rows = L->gu_sizes[i];
+                    views[i].w = L->gu.w + (size_t)(i ? L->gu_sizes[0] : 0) * L->gu.cols;
+                    views[i].bias = L->gu.bias ? L->gu.bias + (i ? L->gu_sizes[0] : 0) : NULL;
+                    mats[i] = &views[i], xs[i] = h, outs[i] = i ? gbuf : t;
+                }
+            } else {
+                gemv(&L->gu, h, t);
+                MARK(P_GU, MAT_BYTES(&L->gu));
+                for (int i = 0, off = 0; i < 2; off += L->gu_sizes[i], i++) {
+                    const int has = L->gu_second[i].w != NULL;
+                    mats[i] = has ? &L->gu_second[i] : NULL;
+                    xs[i] = t + off;
+                    outs[i] = has ? (i ? gbuf : b1) : t + off;
+                }
+            }
+            gated(mats, xs, outs, n, f);
+            projection(&L->down, &L->down_second, f, b2, b0, P_DOWN);
         }
-        #pragma omp single
+        for (int32_t i = 0; i < d; i++) x[i] += b0[i];
         rms_norm_rounded(x, m->final_norm, m->eps, d, h);
+        MARK(P_NORM, 0);
         gemv(&m->head, h, logits);
+        MARK(P_HEAD, MAT_BYTES(&m->head));
     }
 }
