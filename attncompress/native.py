@@ -78,39 +78,39 @@ def _compiler() -> str | None:
 
 def library():
     """The loaded kernel library, built on first use; None when it cannot be (see `status`)."""
-    if "lib" in _LIB:
-        return _LIB["lib"]
+    if "lib" not in _LIB:
+        _LIB["lib"], _LIB["why"] = build(FLAGS)
+    return _LIB["lib"]
+
+
+def build(flags: tuple[str, ...]):
+    """(the library built from SOURCE with `flags`, ""), or (None, why not); cached by source, flags and CPU."""
     from .generate import cache_dir
-    _LIB["lib"], _LIB["why"] = None, ""
     cc = _compiler()
     if cc is None:
-        _LIB["why"] = "no C compiler found ($CC, gcc or cc)"
-        return None
+        return None, "no C compiler found ($CC, gcc or cc)"
     try:
         src = SOURCE.read_bytes()
-        key = hashlib.sha256(src + " ".join((cc,) + FLAGS).encode() + _cpu_identity().encode()).hexdigest()[:16]
+        key = hashlib.sha256(src + " ".join((cc,) + flags).encode() + _cpu_identity().encode()).hexdigest()[:16]
         out = cache_dir() / f"decode_step-{key}.so"
         if not out.exists():
             out.parent.mkdir(parents=True, exist_ok=True)
             fd, tmp = tempfile.mkstemp(suffix=".so", dir=out.parent)
             os.close(fd)
-            run = subprocess.run([cc, *FLAGS, str(SOURCE), "-o", tmp, "-lm"], capture_output=True, text=True)
+            run = subprocess.run([cc, *flags, str(SOURCE), "-o", tmp, "-lm"], capture_output=True, text=True)
             if run.returncode != 0:
                 os.unlink(tmp)
                 last = (run.stderr.strip().splitlines() or ["no message"])[-1]
-                _LIB["why"] = f"building {SOURCE.name} with {cc} failed: {last}"
-                return None
+                return None, f"building {SOURCE.name} with {cc} failed: {last}"
             os.replace(tmp, out)  # atomic: a concurrent process sees the whole library or none
         lib = ctypes.CDLL(str(out))
     except OSError as e:  # an unreadable source, an unwritable cache, a library that does not load
-        _LIB["why"] = f"the compiled decode step is unavailable: {e}"
-        return None
+        return None, f"the compiled decode step is unavailable: {e}"
     lib.decode_step.argtypes = [ctypes.POINTER(Model), ctypes.c_int32, ctypes.c_int32, ctypes.c_void_p]
     lib.decode_step.restype = None
     lib.work_floats.argtypes = [ctypes.POINTER(Model)]
     lib.work_floats.restype = ctypes.c_int64
-    _LIB["lib"] = lib
-    return lib
+    return lib, ""
 
 
 def status() -> str:
