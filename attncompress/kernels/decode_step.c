@@ -24,6 +24,8 @@
 #if defined(__AVX512F__) && defined(__AVX512BW__) && defined(__AVX512VL__) && defined(__F16C__)
 #include <immintrin.h>
 #define WIDE 1
+/* The first min(n, 16) of 16 lanes (n ≥ 1): the mask of a vector's last, partial, load or store. */
+static inline __mmask16 lanes(int32_t n) { return (__mmask16)(n >= 16 ? 0xffff : (1u << n) - 1); }
 #endif
 
 typedef struct {
@@ -173,7 +175,7 @@ static inline void gemv_block(const Mat *mt, const float *x, float *y, int32_t b
         a3 = _mm512_fmadd_ps(_mm512_cvtph_ps(_mm256_loadu_si256((const __m256i *)(r[3] + i))), xv, a3);
     }
     if (i < C) {  /* the last C mod 16 columns, masked (a factor's rank is rarely a multiple of 16) */
-        const __mmask16 k = (__mmask16)((1u << (C - i)) - 1);
+        const __mmask16 k = lanes(C - i);
         const __m512 xv = _mm512_maskz_loadu_ps(k, x + i);
         a0 = _mm512_fmadd_ps(_mm512_cvtph_ps(_mm256_maskz_loadu_epi16(k, r[0] + i)), xv, a0);
         a1 = _mm512_fmadd_ps(_mm512_cvtph_ps(_mm256_maskz_loadu_epi16(k, r[1] + i)), xv, a1);
@@ -218,7 +220,7 @@ static inline float dot(const float *a, const float *b, int32_t n) {
     int32_t i = 0;
     for (; i + 16 <= n; i += 16) acc = _mm512_fmadd_ps(_mm512_loadu_ps(a + i), _mm512_loadu_ps(b + i), acc);
     if (i < n) {
-        const __mmask16 k = (__mmask16)((1u << (n - i)) - 1);
+        const __mmask16 k = lanes(n - i);
         acc = _mm512_fmadd_ps(_mm512_maskz_loadu_ps(k, a + i), _mm512_maskz_loadu_ps(k, b + i), acc);
     }
     return _mm512_reduce_add_ps(acc);
@@ -232,9 +234,10 @@ static inline float dot(const float *a, const float *b, int32_t n) {
 #endif
 }
 
-/* e^x, to about 2 float32 ulps (x clamped to [-87.3, 88.7], where float32 neither overflows nor goes
- * subnormal): x = n ln2 + r with |r| ≤ ln2 / 2, e^r by its Taylor series to r⁶ (the next term is below
- * 2⁻²³ of the sum), times 2ⁿ. */
+/* e^x for x clamped to [-87.3, 88.7] (where float32 neither overflows nor goes subnormal): x = n ln2 + r with
+ * |r| ≤ ln2 / 2, e^r by its Taylor series to r⁶ (the next term is about 2⁻²³ of the sum), times 2ⁿ. Relative
+ * error below 2.3e-7 (about 2⁻²²) against double-precision exp on [-87, 88.7] in steps of 1e-5 (a scratch
+ * check, not a test). */
 #ifdef WIDE
 static inline __m512 exp16(__m512 x) {
     x = _mm512_min_ps(_mm512_max_ps(x, _mm512_set1_ps(-87.3f)), _mm512_set1_ps(88.7f));
@@ -264,7 +267,7 @@ static float exp_shifted(float *x, int32_t n, float mx) {
         acc = _mm512_add_ps(acc, e);
     }
     if (i < n) {
-        const __mmask16 k = (__mmask16)((1u << (n - i)) - 1);
+        const __mmask16 k = lanes(n - i);
         const __m512 e = _mm512_maskz_mov_ps(k, exp16(_mm512_sub_ps(_mm512_maskz_loadu_ps(k, x + i), m)));
         _mm512_mask_storeu_ps(x + i, k, e);
         acc = _mm512_add_ps(acc, e);
@@ -285,7 +288,7 @@ static inline void axpy(float *acc, float p, const float *v, int32_t n) {
     for (; i + 16 <= n; i += 16)
         _mm512_storeu_ps(acc + i, _mm512_fmadd_ps(pv, _mm512_loadu_ps(v + i), _mm512_loadu_ps(acc + i)));
     if (i < n) {
-        const __mmask16 k = (__mmask16)((1u << (n - i)) - 1);
+        const __mmask16 k = lanes(n - i);
         _mm512_mask_storeu_ps(acc + i, k, _mm512_fmadd_ps(pv, _mm512_maskz_loadu_ps(k, v + i),
                                                           _mm512_maskz_loadu_ps(k, acc + i)));
     }
@@ -308,7 +311,7 @@ static inline void prefetch_row(const float *p, int32_t n) {
 static void weighted_rows(float *acc, const float *p, const float *v, int32_t n, int32_t w) {
 #ifdef WIDE
     for (int32_t i = 0; i < w; i += 16) {
-        const __mmask16 k = (__mmask16)(w - i >= 16 ? 0xffff : (1u << (w - i)) - 1);
+        const __mmask16 k = lanes(w - i);
         __m512 a0 = _mm512_setzero_ps(), a1 = a0;
         int32_t t = 0;
         for (; t + 2 <= n; t += 2) {
@@ -330,7 +333,7 @@ static void round_scaled(const float *x, const float *w, float r, int32_t n, flo
 #ifdef WIDE
     const __m512 rv = _mm512_set1_ps(r);
     for (; i < n; i += 16) {
-        const __mmask16 k = (__mmask16)(n - i >= 16 ? 0xffff : (1u << (n - i)) - 1);
+        const __mmask16 k = lanes(n - i);
         __m512 v = _mm512_mul_ps(_mm512_maskz_loadu_ps(k, x + i), rv);
         if (w) v = _mm512_mul_ps(v, _mm512_maskz_loadu_ps(k, w + i));
         v = _mm512_cvtph_ps(_mm512_cvtps_ph(v, _MM_FROUND_TO_NEAREST_INT | _MM_FROUND_NO_EXC));
@@ -464,12 +467,12 @@ static void attention(const Model *m, const Layer *L, const float *q, const floa
 /* f = round_half(silu(gate) · up) of the feed-forward, the down product's input. A part with a matrix in
  * mats[i] is computed here into outs[i] (a dense pair: both are row ranges of `first`; a factor pair's part:
  * its second matrix); a part without one (NULL) is already in outs[i] (the first product's output). Each
- * thread takes a contiguous range of 16-row chunks (the split `schedule(static)` would make) and reads its
+ * thread takes an equal share (± 1) of the 16-row chunks, contiguous, and reads its
  * gate rows, then its up rows, as two long streams, then writes their f: no barrier between. */
 static void gated(const Mat *const *mats, const float *const *xs, float *const *outs, int32_t n, float *f) {
     const int32_t chunks = (n + 15) / 16, nt = omp_get_num_threads(), tid = omp_get_thread_num();
-    const int32_t j0 = 16 * (int32_t)((int64_t)chunks * tid / nt);
-    const int32_t j1 = 16 * (int32_t)((int64_t)chunks * (tid + 1) / nt) < n ? 16 * (int32_t)((int64_t)chunks * (tid + 1) / nt) : n;
+    const int32_t j0 = 16 * (int32_t)((int64_t)chunks * tid / nt), end = 16 * (int32_t)((int64_t)chunks * (tid + 1) / nt);
+    const int32_t j1 = end < n ? end : n;
     for (int i = 0; i < 2; i++)
         if (mats[i])
             for (int32_t b = j0 / 4; b < (j1 + 3) / 4; b++) gemv_block(mats[i], xs[i], outs[i], b);
@@ -477,7 +480,7 @@ static void gated(const Mat *const *mats, const float *const *xs, float *const *
     int32_t j = j0;
 #ifdef WIDE
     for (; j < j1; j += 16) {
-        const __mmask16 k = (__mmask16)(j1 - j >= 16 ? 0xffff : (1u << (j1 - j)) - 1);
+        const __mmask16 k = lanes(j1 - j);
         const __m512 a = _mm512_maskz_loadu_ps(k, gt + j), u = _mm512_maskz_loadu_ps(k, up + j);
         const __m512 e = exp16(_mm512_sub_ps(_mm512_setzero_ps(), a));
         const __m512 v = _mm512_mul_ps(_mm512_div_ps(a, _mm512_add_ps(_mm512_set1_ps(1.f), e)), u);
